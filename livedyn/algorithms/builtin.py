@@ -1,0 +1,86 @@
+"""The five built-in algorithms: compressor, limiter, expander, gate, ducker."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from ..params import LAW_COMPRESSOR, LAW_DUCKER, LAW_EXPANDER, LAW_GATE, ParamError, Schema
+
+
+class AlgorithmError(ParamError):
+    """An algorithm name or file that cannot be used."""
+
+
+@dataclass(frozen=True)
+class Algorithm:
+    name: str
+    description: str
+    schema: Schema
+    kind: str  # which fused kernel runs it: "dynamics" or "limiter"
+    law: int  # gain law for the dynamics kernel (see livedyn.dsp.gaincurve)
+    needs_key: bool = False
+
+    def kernel(self):
+        from ..dsp import kernel_for
+
+        return kernel_for(self.kind)
+
+
+
+_KEY = dict(key="main", key_hpf=0.0, key_lpf=0.0, key_bpf=0.0, key_q=1.0, link="max")
+
+BUILTINS = {
+    a.name: a
+    for a in [
+        Algorithm(
+            "compressor",
+            "downward compressor: above threshold, output rises 1 dB per `ratio` dB of input",
+            Schema.of(
+                threshold=-20.0, ratio=4.0, knee=6.0, attack=10.0, release=150.0, hold=0.0,
+                makeup=0.0, automakeup="off", detector="peak", rms_time=10.0,
+                ballistics="branching", domain="log", topology="feedforward", lookahead=0.0,
+                mix=100.0, ceiling=0.0, **_KEY,
+            ),
+            "dynamics", LAW_COMPRESSOR,
+        ),
+        Algorithm(
+            "limiter",
+            "lookahead peak limiter: no output sample passes the ceiling when lookahead >= attack",
+            Schema.of(
+                ceiling=-1.0, lookahead=5.0, attack=5.0, release=80.0, hold=0.0, true_peak="off",
+                makeup=0.0, mix=100.0, link="max",
+            ),
+            "limiter", 0,
+        ),
+        Algorithm(
+            "expander",
+            "downward expander: below threshold, output falls `ratio` dB per dB, down to -range",
+            Schema.of(
+                threshold=-45.0, ratio=2.0, knee=6.0, range=40.0, hysteresis=0.0, attack=1.0,
+                release=100.0, hold=20.0, makeup=0.0, detector="peak", rms_time=10.0,
+                lookahead=0.0, mix=100.0, ceiling=0.0, **_KEY,
+            ),
+            "dynamics", LAW_EXPANDER,
+        ),
+        Algorithm(
+            "gate",
+            "noise gate: opens above threshold, closes below threshold - hysteresis, to -range",
+            Schema.of(
+                threshold=-45.0, hysteresis=4.0, range=60.0, attack=0.5, release=80.0,
+                hold=50.0, makeup=0.0, detector="peak", rms_time=10.0, lookahead=0.0,
+                mix=100.0, ceiling=0.0, **_KEY,
+            ),
+            "dynamics", LAW_GATE,
+        ),
+        Algorithm(
+            "ducker",
+            "key-input ducker: when the key passes threshold the main signal drops, by up to range",
+            Schema.of(
+                threshold=-35.0, ratio="inf", knee=6.0, range=12.0, attack=15.0, release=400.0,
+                hold=250.0, makeup=0.0, detector="rms", rms_time=20.0, ballistics="branching",
+                lookahead=0.0, mix=100.0, ceiling=0.0,
+                **{**_KEY, "key": "external", "key_hpf": 120.0},
+            ),
+            "dynamics", LAW_DUCKER, needs_key=True,
+        ),
+    ]
+}

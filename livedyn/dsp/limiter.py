@@ -1,0 +1,274 @@
+"""The lookahead peak limiter, with a ceiling that holds by construction.
+
+Design. For every input sample the *required gain* is r[t] = min(1, ceiling / |x[t]|) (linked:
+the largest |x| over channels). The main path is delayed by the lookahead L. The gain applied to
+the delayed sample x[n - L] is built in three steps:
+
+1. minimum hold over the last L + 1 requirements:  m[n] = min(r[n - L .. n]);
+2. moving average over the last A + 1 values of m, with attack A <= L:
+   b[n] = mean(m[n - A .. n]). Every m[j] in that average has r[n - L] inside its window
+   (j - L <= n - L <= j), so b[n] <= r[n - L]: the delayed sample cannot pass the ceiling, and
+   the gain moves to its target along a straight line over A samples;
+3. release: g[n] = min(b[n], a g[n-1] + (1 - a) b[n]) with the release one-pole a (and hold),
+   which never rises above b.
+
+A last clamp g <= r[n - L] (and the requirement of the old delay tap during a lookahead
+crossfade) absorbs floating-point rounding; the kernel counts every sample where it cut the gain
+by more than 1e-9 relative (``S_CLAMP``), so tests can show that the design, not the clamp, holds
+the ceiling. An attack longer than the lookahead acts as the lookahead.
+
+With ``true_peak = on`` the requirement also uses the 4x oversampled inter-sample peak
+(ITU-R BS.1770-4 Annex 2 interpolation). The main path is then delayed by TP_DELAY more samples
+and the hold window widened by TP_DELAY + TP_SPREAD so that the interpolated peaks around each
+output sample lie inside it.
+
+The running sum of step 2 is recomputed exactly every SUM_REFRESH frames (counted from reset, so
+the result does not depend on block splits), which keeps rounding from drifting.
+"""
+import math
+
+import numba as nb
+
+from ..params import (
+    DELAY_XFADE_MS, GLIDE_MS, LINK_NONE, P_ATTACK, P_CEILING, P_HOLD, P_LINK, P_LOOKAHEAD, P_RELEASE,
+    P_SAMPLERATE, P_TRUE_PEAK,
+)
+from .dynamics import glide, read_delayed, start_block_delay
+from .layout import (
+    R_BOX, R_DQ_HEAD, R_DQ_LEN, R_G, R_GAIN, R_HOLD, R_MEAS, R_TAPS, R_TP, R_TP_POS, RING_DQ_IDX,
+    RING_DQ_VAL, RING_M, RING_REQ, S_ATT, S_CEIL, S_CLAMP, S_DCUR, S_DOLD, S_FRAMES, S_GR_MAX,
+    S_LOOK, S_NONFINITE, S_READY, S_WPOS, S_XF, T_CURVE, T_GAIN, T_KEY, T_LEVEL, T_TOTAL,
+)
+from .truepeak import TP_PHASE_TAPS, tp_tick
+from .stages import JIT, amp_to_db, db_to_amp, one_pole_coeff
+
+# The interpolated values computed when sample n arrives describe the signal between n - 6 and
+# n - 5 (livedyn.dsp.truepeak). With the main path TP_DELAY samples longer than the hold window's
+# lookahead and the window TP_DELAY + TP_SPREAD longer, every interpolated value within a sample
+# of an output sample, and the FIR's support around it, lies inside the window.
+TP_DELAY = 12  # extra main-path delay in true-peak mode, samples
+TP_SPREAD = 6  # extra hold-window length behind the output sample in true-peak mode
+SUM_REFRESH = 4096
+
+
+def limiter_init(st, ring, channels):
+    """Fresh state: unity gain everywhere, requirement history at 1, true-peak taps loaded."""
+    from .truepeak import TP_TAPS
+
+    st[R_G, :] = 1.0
+    base = channels
+    for g in range(channels):
+        col = base + 4 * g
+        ring[:, col + RING_M] = 1.0
+        ring[:, col + RING_REQ] = 1.0
+    st[R_TAPS:R_TAPS + 4, :TP_PHASE_TAPS] = TP_TAPS
+
+
+@nb.njit(**JIT)
+def _rebuild_box(ring, col, w, n_box):
+    s = 0.0
+    n = ring.shape[0]
+    for i in range(n_box):
+        j = w - i
+        if j < 0:
+            j += n
+        s += ring[j, col + RING_M]
+    return s
+
+
+@nb.njit(**JIT)
+def limiter_block(x, key, out, p, st, ring, tr):
+    """Process one block. See livedyn.dsp.layout for the argument contract."""
+    frames = x.shape[0]
+    ch = x.shape[1]
+    fs = p[P_SAMPLERATE]
+    tracing = tr.shape[1] >= frames and frames > 0
+    n_ring = ring.shape[0]
+    tp = p[P_TRUE_PEAK] > 0.5
+    look = int(math.floor(p[P_LOOKAHEAD] * fs / 1000.0 + 0.5))
+    att = int(math.floor(p[P_ATTACK] * fs / 1000.0 + 0.5))
+    if att > look:
+        att = look
+    window = look + (TP_DELAY + TP_SPREAD if tp else 0)
+    a_rel = one_pole_coeff(p[P_RELEASE], fs)
+    hold_n = math.floor(p[P_HOLD] * fs / 1000.0 + 0.5)
+    g_glide = 1.0 - one_pole_coeff(GLIDE_MS, fs)
+    ngain = ch if int(p[P_LINK]) == LINK_NONE else 1
+    t_ceil = p[P_CEILING]
+
+    # The main path delay follows the lookahead (plus the true-peak delay).
+    start_block_delay(st, look + (TP_DELAY if tp else 0), fs)
+    d_cur = int(st[S_DCUR, 0])
+    d_old = int(st[S_DOLD, 0])
+    xf = st[S_XF, 0]
+    xf_len = max(1.0, math.floor(DELAY_XFADE_MS * fs / 1000.0 + 0.5))
+    tpd = TP_DELAY if tp else 0
+
+    w = int(st[S_WPOS, 0])
+    frame0 = st[S_FRAMES, 0]
+    if st[S_READY, 0] == 0.0:
+        st[S_CEIL, 0] = t_ceil
+        st[S_LOOK, 0] = window
+        st[S_ATT, 0] = att
+        for g in range(ngain):
+            st[R_BOX, g] = att + 1.0
+        st[S_READY, 0] = 1.0
+    # A new window or attack: rebuild the queue from the requirement history and the box sum.
+    if int(st[S_LOOK, 0]) != window or int(st[S_ATT, 0]) != att:
+        for g in range(ngain):
+            col = ch + 4 * g
+            st[R_DQ_HEAD, g] = 0.0
+            st[R_DQ_LEN, g] = 0.0
+            for back in range(window, 0, -1):
+                j = w - back
+                if j < 0:
+                    j += n_ring
+                _dq_push(ring, st, col, g, ring[j, col + RING_REQ], frame0 - back)
+            st[R_BOX, g] = _rebuild_box(ring, col, w - 1 if w > 0 else n_ring - 1, att + 1)
+        st[S_LOOK, 0] = window
+        st[S_ATT, 0] = att
+    n_box = att + 1.0
+
+    tp_hist = st[R_TP:R_TP + TP_PHASE_TAPS]
+    tp_taps = st[R_TAPS:R_TAPS + 4, :TP_PHASE_TAPS]
+    ceil = st[S_CEIL, 0]
+    ceil_lin = db_to_amp(ceil)
+    nonfinite = st[S_NONFINITE, 0]
+    clamps = st[S_CLAMP, 0]
+    gr_max = 0.0
+    for n in range(frames):
+        t = frame0 + n
+        if ceil != t_ceil:
+            ceil = glide(ceil, t_ceil, g_glide)
+            ceil_lin = db_to_amp(ceil)
+        for c in range(ch):
+            v = x[n, c]
+            if not math.isfinite(v):
+                v = 0.0
+                nonfinite += 1.0
+            ring[w, c] = v
+        tp_pos = int(st[R_TP_POS, 0])
+        for c in range(ch):
+            a = abs(ring[w, c])
+            if tp:
+                a_tp = tp_tick(tp_hist, tp_pos, c, ring[w, c], tp_taps)
+                if a_tp > a:
+                    a = a_tp
+            st[R_MEAS, c] = a
+        if tp:
+            tp_pos += 1
+            st[R_TP_POS, 0] = 0 if tp_pos >= TP_PHASE_TAPS else tp_pos
+        refresh = (t % SUM_REFRESH) == 0.0
+        for g in range(ngain):
+            col = ch + 4 * g
+            if ngain == 1:
+                a = st[R_MEAS, 0]
+                for c in range(1, ch):
+                    if st[R_MEAS, c] > a:
+                        a = st[R_MEAS, c]
+            else:
+                a = st[R_MEAS, g]
+            r = ceil_lin / a if a > ceil_lin else 1.0
+            ring[w, col + RING_REQ] = r
+            # 1. minimum over the window
+            _dq_push(ring, st, col, g, r, t)
+            h = int(st[R_DQ_HEAD, g])
+            while ring[h, col + RING_DQ_IDX] < t - window:
+                h += 1
+                if h >= n_ring:
+                    h = 0
+                st[R_DQ_LEN, g] -= 1.0
+            st[R_DQ_HEAD, g] = h
+            m = ring[h, col + RING_DQ_VAL]
+            # 2. moving average over att + 1 values of m
+            j = w - att - 1
+            if j < 0:
+                j += n_ring
+            oldest = ring[j, col + RING_M]
+            ring[w, col + RING_M] = m
+            if refresh:
+                box = _rebuild_box(ring, col, w, att + 1)
+            else:
+                box = st[R_BOX, g] + m - oldest
+            st[R_BOX, g] = box
+            b = box / n_box
+            if b > m and att == 0:
+                b = m
+            # 3. release with hold, never above b
+            gp = st[R_G, g]
+            if b < gp:
+                gn = b
+                st[R_HOLD, g] = hold_n
+            elif st[R_HOLD, g] > 0.0:
+                st[R_HOLD, g] -= 1.0
+                gn = gp
+            else:
+                gn = a_rel * gp + (1.0 - a_rel) * b
+                if gn > b:
+                    gn = b
+            # last clamp: the requirement of the sample(s) this gain is applied to
+            i = w - d_cur + tpd
+            if i < 0:
+                i += n_ring
+            lim = ring[i, col + RING_REQ]
+            if xf > 0.0:
+                i = w - d_old + tpd
+                if i < 0:
+                    i += n_ring
+                if ring[i, col + RING_REQ] < lim:
+                    lim = ring[i, col + RING_REQ]
+            if gn > lim:
+                if gn > lim * (1.0 + 1e-9):
+                    clamps += 1.0
+                gn = lim
+            st[R_G, g] = gn
+            st[R_GAIN, g] = gn
+            gdb = amp_to_db(gn)
+            if -gdb > gr_max:
+                gr_max = -gdb
+            if tracing:
+                tr[T_KEY, n, g] = a
+                tr[T_LEVEL, n, g] = amp_to_db(a)
+                tr[T_CURVE, n, g] = amp_to_db(r)
+                tr[T_GAIN, n, g] = gdb
+                tr[T_TOTAL, n, g] = gdb
+        for c in range(ch):
+            g = 0 if ngain == 1 else c
+            xd = read_delayed(ring, w, c, d_cur, d_old, xf, xf_len)
+            o = xd * st[R_GAIN, g]
+            out[n, c] = o
+        if xf > 0.0:
+            xf -= 1.0
+        w += 1
+        if w >= n_ring:
+            w = 0
+
+    st[S_CEIL, 0] = ceil
+    st[S_XF, 0] = xf
+    st[S_WPOS, 0] = w
+    st[S_NONFINITE, 0] = nonfinite
+    st[S_CLAMP, 0] = clamps
+    st[S_FRAMES, 0] += frames
+    st[S_GR_MAX, 0] = gr_max
+
+
+@nb.njit(**JIT)
+def _dq_push(ring, st, col, g, v, t):
+    """Push (v, t) onto channel g's monotonic queue (values increase from head to tail)."""
+    n_ring = ring.shape[0]
+    h = int(st[R_DQ_HEAD, g])
+    ln = int(st[R_DQ_LEN, g])
+    while ln > 0:
+        back = h + ln - 1
+        if back >= n_ring:
+            back -= n_ring
+        if ring[back, col + RING_DQ_VAL] >= v:
+            ln -= 1
+        else:
+            break
+    slot = h + ln
+    if slot >= n_ring:
+        slot -= n_ring
+    ring[slot, col + RING_DQ_VAL] = v
+    ring[slot, col + RING_DQ_IDX] = t
+    st[R_DQ_LEN, g] = ln + 1

@@ -1,0 +1,194 @@
+"""Processor: one configured algorithm with its state.
+
+>>> import numpy as np, livedyn
+>>> comp = livedyn.Processor("compressor", 48000, 2, threshold=-24, ratio="4:1")
+>>> y = comp.process(np.zeros((64, 2), np.float32))
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from . import algorithms
+from .dsp import layout as L
+from .params import (
+    KEY_EXTERNAL, LINK_MEAN, LINK_NONE, MAX_LOOKAHEAD_MS, NPARAM, P_KEY, P_LAW, P_LINK,
+    P_LOOKAHEAD, P_SAMPLERATE, P_TOPOLOGY, P_TRUE_PEAK, TOPOLOGY_FEEDBACK, ParamError,
+)
+
+MAX_CHANNELS = 8
+
+
+class Processor:
+    """One algorithm, configured for a sample rate and channel layout, with its state.
+
+    Parameters
+    ----------
+    algorithm : str or Algorithm
+        A built-in name (``compressor``, ``limiter``, ``expander``, ``gate``, ``ducker``).
+    samplerate : float
+        Hz.
+    channels : int
+        Main channels, 1 to 8.
+    key_channels : int
+        Channels of the external key input (0: no external key).
+    **params
+        Initial parameter values by name, as numbers or text (``ratio="4:1"``).
+    """
+
+    def __init__(self, algorithm, samplerate, channels, key_channels=0, **params):
+        self.algorithm = algorithms.get(algorithm)
+        self.schema = self.algorithm.schema
+        samplerate = float(samplerate)
+        if not (8000 <= samplerate <= 384000):
+            raise ParamError(f"samplerate = {samplerate:g} Hz: expected 8000 to 384000 Hz")
+        if not (1 <= int(channels) <= MAX_CHANNELS):
+            raise ParamError(f"channels = {channels}: expected 1 to {MAX_CHANNELS}")
+        if not (0 <= int(key_channels) <= MAX_CHANNELS):
+            raise ParamError(f"key_channels = {key_channels}: expected 0 to {MAX_CHANNELS}")
+        self.samplerate = samplerate
+        self.channels = int(channels)
+        self.key_channels = int(key_channels)
+        self._kernel = self.algorithm.kernel()
+
+        self.p = np.zeros(NPARAM, dtype=np.float64)
+        for prm in self.schema:
+            self.p[prm.slot] = prm.default
+        self.p[P_SAMPLERATE] = samplerate
+        self.p[P_LAW] = self.algorithm.law
+        if self.algorithm.needs_key and self.key_channels == 0 and "key" in self.schema:
+            self.p[self.schema["key"].slot] = 0.0  # no key input: fall back to the main input
+        self._check_combination(self.p)
+        for name, value in params.items():
+            self.set(name, value)
+
+        ncols = max(self.channels, self.key_channels, 12)
+        self.st = np.zeros((L.NROWS, ncols), dtype=np.float64)
+        from .dsp.limiter import TP_DELAY, TP_SPREAD
+
+        self._tp_delay = TP_DELAY
+        ring_len = int(math.ceil(MAX_LOOKAHEAD_MS * samplerate / 1000.0)) + TP_DELAY + TP_SPREAD + 8
+        self.ring = np.zeros((ring_len, L.RING_COLS_PER_CHANNEL * self.channels), dtype=np.float64)
+        self._no_trace = np.zeros((L.NTRACE, 0, ncols), dtype=np.float64)
+        self.reset()
+
+    # -- parameters ---------------------------------------------------------------------------
+    def set(self, name, value):
+        """Set a parameter from a number or text; raises ParamError with a one-line reason."""
+        prm = self.schema[name]
+        v = prm.parse(value)
+        if prm.name in ("key_lpf", "key_bpf") and v >= self.samplerate / 2:
+            raise ParamError(
+                f"{prm.name} = {v:g} Hz: must be below half the sample rate "
+                f"({self.samplerate / 2:g} Hz)")
+        trial = self.p.copy()
+        trial[prm.slot] = v
+        self._check_combination(trial)
+        self.p[prm.slot] = v
+        return v
+
+    def get(self, name) -> float:
+        return float(self.p[self.schema[name].slot])
+
+    def values(self) -> dict:
+        """Current parameter values by name (floats, choices as indices)."""
+        return {prm.name: float(self.p[prm.slot]) for prm in self.schema}
+
+    def describe(self) -> dict:
+        """Current parameter values by name as the user reads them."""
+        return {prm.name: prm.format(self.p[prm.slot]) for prm in self.schema}
+
+    def _check_combination(self, p):
+        if "key" in self.schema and int(p[P_KEY]) == KEY_EXTERNAL and self.key_channels == 0:
+            raise ParamError(
+                f"key = external: this {self.algorithm.name} has no key input "
+                "(give a key signal or key channels, or set key = main)")
+        if "key" in self.schema and int(p[P_KEY]) == KEY_EXTERNAL:
+            if int(p[P_LINK]) == LINK_NONE and self.key_channels not in (1, self.channels):
+                raise ParamError(
+                    f"link = none with {self.key_channels} key channels: unlinked gain needs a "
+                    f"mono key or one key channel per main channel ({self.channels})")
+            if "topology" in self.schema and int(p[P_TOPOLOGY]) == TOPOLOGY_FEEDBACK:
+                raise ParamError("topology = feedback: the detector reads the output, so the key "
+                                 "must be main")
+        if self.algorithm.kind == "limiter" and int(p[P_LINK]) == LINK_MEAN:
+            raise ParamError("link = mean: the limiter's ceiling needs max or none")
+
+    # -- state --------------------------------------------------------------------------------
+    def reset(self):
+        """Forget all signal history; parameters stay."""
+        self.st[:] = 0.0
+        self.ring[:] = 0.0
+        if self.algorithm.kind == "limiter":
+            from .dsp.limiter import limiter_init
+
+            limiter_init(self.st, self.ring, self.channels)
+
+    @property
+    def latency_samples(self) -> int:
+        """Delay of the main path in samples: the lookahead (plus the true-peak filter delay)."""
+        d = int(math.floor(self.p[P_LOOKAHEAD] * self.samplerate / 1000.0 + 0.5))
+        if self.algorithm.kind == "limiter" and self.p[P_TRUE_PEAK] > 0.5:
+            d += self._tp_delay
+        return d
+
+    @property
+    def nonfinite_count(self) -> int:
+        """Non-finite input samples replaced by 0 since reset."""
+        return int(self.st[L.S_NONFINITE, 0])
+
+    @property
+    def gain_reduction_db(self) -> float:
+        """Largest gain reduction in the last processed block, dB (>= 0)."""
+        return float(self.st[L.S_GR_MAX, 0])
+
+    # -- processing ---------------------------------------------------------------------------
+    def _prepare(self, x, key):
+        x = np.asarray(x)
+        squeeze = x.ndim == 1
+        if squeeze:
+            x = x[:, None]
+        if x.ndim != 2 or x.shape[1] != self.channels:
+            raise ParamError(
+                f"input shape {x.shape}: expected (frames, {self.channels})")
+        x = np.ascontiguousarray(x, dtype=np.float32)
+        if key is None:
+            if "key" in self.schema and int(self.p[P_KEY]) == KEY_EXTERNAL:
+                raise ParamError("key = external but no key signal was given")
+            k = x
+        else:
+            k = np.asarray(key)
+            if k.ndim == 1:
+                k = k[:, None]
+            if k.shape[0] != x.shape[0] or k.shape[1] != max(self.key_channels, 1):
+                raise ParamError(
+                    f"key shape {k.shape}: expected ({x.shape[0]}, {self.key_channels})")
+            k = np.ascontiguousarray(k, dtype=np.float32)
+        return x, k, squeeze
+
+    def process(self, x, key=None):
+        """Process a block: float32 (frames, channels) in, same shape out."""
+        x, k, squeeze = self._prepare(x, key)
+        out = np.empty_like(x)
+        self._kernel(x, k, out, self.p, self.st, self.ring, self._no_trace)
+        return out[:, 0] if squeeze else out
+
+    def process_traced(self, x, key=None):
+        """Process a block and return (output, traces).
+
+        traces maps each name of ``livedyn.dsp.layout.TRACE_NAMES`` to a float64 array of shape
+        (frames, n): the filtered key per key channel, then per gain channel the detector level
+        (dB), the gain computer output (dB), the smoothed gain (dB) and the total gain (dB).
+        """
+        x, k, squeeze = self._prepare(x, key)
+        out = np.empty_like(x)
+        tr = np.zeros((L.NTRACE, x.shape[0], self.st.shape[1]), dtype=np.float64)
+        self._kernel(x, k, out, self.p, self.st, self.ring, tr)
+        nkey = k.shape[1]
+        ngain = self.channels if int(self.p[P_LINK]) == LINK_NONE else 1
+        traces = {}
+        for i, name in enumerate(L.TRACE_NAMES):
+            width = nkey if i == L.T_KEY else ngain
+            traces[name] = tr[i, :, :width].copy()
+        return (out[:, 0] if squeeze else out), traces
