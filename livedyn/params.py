@@ -116,7 +116,7 @@ class Param:
         if self.taper == "choice":
             return float(self._parse_choice(value))
         if isinstance(value, bool):
-            raise ParamError(f"{self.name} = {value!r}: expected a number, {self.describe_range()}")
+            raise ParamError(f"{self.name} = {value!r}: expected a number from {self.describe_range().removeprefix('expected ')}")
         if isinstance(value, (int, float)):
             v = float(value)
         else:
@@ -140,14 +140,16 @@ class Param:
                     v = _parse_float(text)
                 except ValueError:
                     raise ParamError(
-                        f"{self.name} = {value!r}: expected a number, {self.describe_range()}"
+                        f"{self.name} = {value!r}: expected a number from {self.describe_range().removeprefix('expected ')}"
                     ) from None
         return self.check(v)
 
     def check(self, v: float) -> float:
         v = float(v)
+        if abs(v) < 1e-12:
+            v = 0.0  # no subnormal (or meaningless) values into the kernels
         if math.isnan(v):
-            raise ParamError(f"{self.name} = nan: expected a number, {self.describe_range()}")
+            raise ParamError(f"{self.name} = nan: expected a number from {self.describe_range().removeprefix('expected ')}")
         if self.off_value is not None and v == self.off_value:
             return v
         if math.isinf(v) and not (v > 0 and math.isinf(self.hi)):

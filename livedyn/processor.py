@@ -185,8 +185,8 @@ class Processor:
         out = np.empty_like(x)
         tr = np.zeros((L.NTRACE, x.shape[0], self.st.shape[1]), dtype=np.float64)
         self._kernel(x, k, out, self.p, self.st, self.ring, tr)
-        nkey = k.shape[1]
         ngain = self.channels if int(self.p[P_LINK]) == LINK_NONE else 1
+        nkey = ngain if self.algorithm.kind == "limiter" else k.shape[1]
         traces = {}
         for i, name in enumerate(L.TRACE_NAMES):
             width = nkey if i == L.T_KEY else ngain
