@@ -47,7 +47,7 @@ BUILTINS = {
             "lookahead peak limiter: no output sample passes the ceiling when lookahead >= attack",
             Schema.of(
                 ceiling=-1.0, lookahead=5.0, attack=5.0, release=80.0, hold=0.0, true_peak="off",
-                makeup=0.0, mix=100.0, link="max",
+                link="max",
             ),
             "limiter", 0,
         ),

@@ -1,0 +1,331 @@
+"""Offline render: a WAV file through the same Processor the live engine runs, block by block.
+
+Memory stays bounded whatever the file length: input, key, output and traces are streamed.
+By default the output is aligned with the input (the processor's latency is taken off the front
+and the tail is flushed with silence), so OUT.wav lines up with IN.wav; ``keep_latency=True``
+writes the stream exactly as a live run would produce it.
+"""
+from __future__ import annotations
+
+import json
+import math
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from . import algorithms
+from . import presets as presets_mod
+from .automation import Automation, AutomationCursor
+from .dsp.layout import TRACE_NAMES
+from .meters import MeterSet
+from .params import KEY_EXTERNAL, P_KEY, ParamError
+from .processor import Processor
+from .wavio import WavReader, WavWriter
+
+DEFAULT_BLOCKSIZE = 1024
+
+
+class RenderError(ParamError):
+    """A render that cannot start or finish; one line for the user."""
+
+
+@dataclass
+class Setup:
+    """What to run: algorithm, preset values, then individual settings (applied in that order)."""
+
+    algorithm: str | None = None
+    preset: str | None = None
+    settings: list = field(default_factory=list)  # [(name, value text)]
+
+
+def parse_setting(text):
+    """'name=value' -> (name, value)."""
+    name, sep, value = str(text).partition("=")
+    if not sep or not name.strip() or not value.strip():
+        raise RenderError(f"--set {text!r}: expected name=value, e.g. threshold=-18")
+    return name.strip(), value.strip()
+
+
+def build_processor(setup: Setup, samplerate, channels, key_channels=0) -> Processor:
+    """A Processor from an algorithm name and/or a preset, then --set values."""
+    preset = presets_mod.load(setup.preset) if setup.preset else None
+    algo = setup.algorithm
+    if preset is not None:
+        if preset.algorithm_file is not None:
+            raise RenderError(f"{preset.source}: algorithm_file presets need the user-algorithm "
+                              "loader, which this version does not have yet")
+        if algo and algorithms.get(algo).name != preset.algorithm:
+            raise RenderError(
+                f"--algorithm {algo} conflicts with preset {setup.preset} "
+                f"(algorithm {preset.algorithm}); give one or make them agree")
+        algo = preset.algorithm
+    algo = algo or "compressor"
+    proc = Processor(algo, samplerate, channels, key_channels=key_channels)
+    if key_channels and "key" in proc.schema:
+        proc.set("key", "external")
+    if preset is not None:
+        for name, v in preset.values.items():
+            if name == "key" and key_channels == 0 and int(v) == KEY_EXTERNAL:
+                continue  # no key input here: stay on the main input
+            proc.set(name, v)
+    for name, value in setup.settings:
+        proc.set(name, value)
+    return proc
+
+
+@dataclass
+class Summary:
+    input: str
+    output: str
+    algorithm: str
+    samplerate: float
+    channels: int
+    frames: int
+    latency_samples: int
+    latency_compensated: bool
+    gain_reduction_max_db: float
+    gain_reduction_mean_db: float
+    reduced_share: float  # share of the time with more than 1 dB of gain reduction
+    input_meters: dict
+    output_meters: dict
+    nonfinite_inputs: int
+    seconds: float
+    automation_events: int = 0
+    parameters: dict = field(default_factory=dict)
+
+    def as_dict(self):
+        return dict(self.__dict__)
+
+    def lines(self):
+        def f(v, unit):
+            if isinstance(v, (list, tuple)):
+                v = max(v) if v else None
+            return "-inf" if v is None or (isinstance(v, float) and math.isinf(v)) else \
+                f"{v:.1f} {unit}"
+
+        dur = self.frames / self.samplerate
+        i, o = self.input_meters, self.output_meters
+        yield f"{self.algorithm}: {Path(self.input).name} -> {Path(self.output).name}, " \
+              f"{dur:.1f} s, {self.channels} ch, {self.samplerate:g} Hz, " \
+              f"{dur / max(self.seconds, 1e-9):.0f}x real time"
+        yield f"  {'':20}{'input':>12}{'output':>12}"
+        yield f"  {'integrated loudness':20}{f(i['integrated_lufs'], 'LUFS'):>12}" \
+              f"{f(o['integrated_lufs'], 'LUFS'):>12}"
+        yield f"  {'max short-term':20}{f(i['max_short_term_lufs'], 'LUFS'):>12}" \
+              f"{f(o['max_short_term_lufs'], 'LUFS'):>12}"
+        yield f"  {'true peak':20}{f(i['max_true_peak_dbtp'], 'dBTP'):>12}" \
+              f"{f(o['max_true_peak_dbtp'], 'dBTP'):>12}"
+        yield f"  {'sample peak':20}{f(i['max_peak_dbfs'], 'dBFS'):>12}" \
+              f"{f(o['max_peak_dbfs'], 'dBFS'):>12}"
+        yield f"  gain reduction: max {self.gain_reduction_max_db:.1f} dB, mean " \
+              f"{self.gain_reduction_mean_db:.1f} dB, above 1 dB for " \
+              f"{100 * self.reduced_share:.0f} % of the time"
+        comp = "compensated" if self.latency_compensated else "kept in the output"
+        yield f"  latency {self.latency_samples} samples " \
+              f"({1000 * self.latency_samples / self.samplerate:.2f} ms, {comp})"
+        if self.nonfinite_inputs:
+            yield f"  {self.nonfinite_inputs} non-finite input samples were replaced by 0"
+
+
+class _Progress:
+    """A one-line progress bar on stderr for long files (only on a terminal)."""
+
+    def __init__(self, total, label, min_frames):
+        self.total = total
+        self.label = label
+        self.on = total >= min_frames and sys.stderr.isatty()
+        self.last = -1
+
+    def update(self, done):
+        if not self.on:
+            return
+        pct = int(100 * done / max(self.total, 1))
+        if pct != self.last:
+            self.last = pct
+            bar = "#" * (pct // 4)
+            print(f"\r{self.label} [{bar:<25}] {pct:3d} %", end="", file=sys.stderr, flush=True)
+
+    def close(self):
+        if self.on:
+            print(file=sys.stderr)
+
+
+class _TraceWriter:
+    """Per-stage traces as float WAV files, one file a stage (columns = channels)."""
+
+    def __init__(self, folder: Path, samplerate, proc: Processor, key_channels):
+        folder.mkdir(parents=True, exist_ok=True)
+        self.folder = folder
+        self.writers = {}
+        ngain = proc.channels if proc.describe().get("link") == "none" else 1
+        widths = {"input": proc.channels, "output": proc.channels}
+        if key_channels:
+            widths["key"] = key_channels
+        for i, name in enumerate(TRACE_NAMES):
+            widths[name] = (key_channels or proc.channels) if i == 0 else ngain
+        if proc.algorithm.kind == "limiter":
+            widths[TRACE_NAMES[0]] = ngain
+        for name, width in widths.items():
+            self.writers[name] = WavWriter(folder / f"{name}.wav", int(samplerate), width, "FLOAT")
+
+    def write(self, name, block):
+        self.writers[name].write(np.ascontiguousarray(block, dtype=np.float32))
+
+    def close(self, info: dict):
+        for w in self.writers.values():
+            w.close()
+        text = json.dumps(info, indent=2, default=float)
+        presets_mod.write_text_atomic(self.folder / "trace.json", text + "\n")
+
+    def abort(self):
+        for w in self.writers.values():
+            w.abort()
+
+
+def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None, trace_dir=None,
+           blocksize=DEFAULT_BLOCKSIZE, keep_latency=False, subtype=None,
+           progress_min_seconds=30.0) -> Summary:
+    """Render ``in_path`` through the configured processor into ``out_path``.
+
+    Raises RenderError / ParamError / WavError with a one-line message; on any error the output
+    file (and an existing file of that name) is left as it was.
+    """
+    if isinstance(blocksize, bool) or int(blocksize) != blocksize or not 1 <= blocksize <= 65536:
+        raise RenderError(f"--blocksize {blocksize!r}: expected a whole number from 1 to 65536")
+    blocksize = int(blocksize)
+    if Path(out_path).resolve() == Path(in_path).resolve():
+        raise RenderError(f"--out {out_path}: is the input file; choose another name")
+    t0 = time.perf_counter()
+    with WavReader(in_path) as src:
+        fs, ch, frames = src.samplerate, src.channels, src.frames
+        key = None
+        kch = 0
+        if key_path is not None:
+            key = WavReader(key_path)
+            if key.samplerate != fs:
+                key.close()
+                raise RenderError(f"{key_path}: {key.samplerate} Hz, expected {fs} Hz like "
+                                  f"{in_path}")
+            if key.frames != frames:
+                key.close()
+                raise RenderError(f"{key_path}: {key.frames} frames, expected {frames} like "
+                                  f"{in_path} (the key must run alongside the input)")
+            kch = key.channels
+        try:
+            proc = build_processor(setup, fs, ch, kch)
+            if "key" in proc.schema and int(proc.p[P_KEY]) == KEY_EXTERNAL and key is None:
+                raise RenderError(f"{proc.algorithm.name} is set to key = external but no --key "
+                                  "file was given (or use --set key=main)")
+            auto = None
+            if automation_path is not None:
+                auto = Automation.load(automation_path, proc.schema)
+                if auto.samplerate != fs:
+                    raise RenderError(f"{automation_path}: recorded at {auto.samplerate:g} Hz, "
+                                      f"expected {fs} Hz like {in_path}")
+            return _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize,
+                        keep_latency, subtype or _output_subtype(src.subtype), t0,
+                        progress_min_seconds)
+        finally:
+            if key is not None:
+                key.close()
+
+
+def _output_subtype(in_subtype):
+    return in_subtype if in_subtype in ("PCM_16", "PCM_24", "PCM_32", "FLOAT") else "FLOAT"
+
+
+def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_latency, subtype,
+         t0, progress_min_seconds):
+    fs, ch, frames = src.samplerate, src.channels, src.frames
+    kch = key.channels if key is not None else 0
+    lat = 0 if keep_latency else proc.latency_samples
+    meters_in = MeterSet(fs, ch)
+    meters_out = MeterSet(fs, ch)
+    cursor = AutomationCursor(auto)
+    tracer = _TraceWriter(Path(trace_dir), fs, proc, kch) if trace_dir else None
+    prog = _Progress(frames, f"rendering {Path(in_path).name}", progress_min_seconds * fs)
+    gr_sum = 0.0
+    gr_max = 0.0
+    reduced = 0
+    to_skip = lat
+    pos = 0
+    key_blocks = key.blocks(blocksize) if key is not None else None
+    try:
+        with WavWriter(out_path, int(fs), ch, subtype, frames_hint=frames) as out:
+            def emit(y):
+                nonlocal to_skip
+                if to_skip:
+                    cut = min(to_skip, len(y))
+                    y = y[cut:]
+                    to_skip -= cut
+                if len(y):
+                    meters_out.process(y)
+                    out.write(y)
+
+            def run_block(x, k, start, stop):
+                nonlocal gr_sum, gr_max, reduced
+                for s0, s1, due in cursor.split(start, stop):
+                    for _, name, value in due:
+                        proc.set(name, value)
+                    xs = x[s0 - start:s1 - start]
+                    ks = None if k is None else k[s0 - start:s1 - start]
+                    y, tr = proc.process_traced(xs, ks)
+                    g = tr["gain_db"]
+                    gmin = g.min(axis=1) if g.shape[1] else np.zeros(len(xs))
+                    gr_sum += float(-gmin.sum())
+                    gr_max = max(gr_max, float(-gmin.min()) if len(gmin) else 0.0)
+                    reduced += int(np.count_nonzero(gmin < -1.0))
+                    if tracer is not None:
+                        tracer.write("input", xs)
+                        if ks is not None:
+                            tracer.write("key", ks)
+                        for name in TRACE_NAMES:
+                            tracer.write(name, tr[name])
+                        tracer.write("output", y)
+                    emit(y)
+
+            for x in src.blocks(blocksize):
+                k = next(key_blocks) if key_blocks is not None else None
+                meters_in.process(x)
+                run_block(x, k, pos, pos + len(x))
+                pos += len(x)
+                prog.update(pos)
+            # flush the latency with silence so nothing is cut off the end
+            tail = lat
+            while tail > 0:
+                n = min(tail, blocksize)
+                z = np.zeros((n, ch), np.float32)
+                kz = np.zeros((n, kch), np.float32) if kch else None
+                run_block(z, kz, pos, pos + n)
+                pos += n
+                tail -= n
+            if tracer is not None:
+                tracer.close({
+                    "algorithm": proc.algorithm.name,
+                    "samplerate": fs,
+                    "latency_samples": proc.latency_samples,
+                    "parameters": proc.describe(),
+                    "files": {n: f"{n}.wav" for n in tracer.writers},
+                    "note": "all traces are sample-aligned with input.wav; output.wav is the raw "
+                            "stream (delayed by latency_samples); dB traces are in dB",
+                })
+                tracer = None
+    except BaseException:
+        if tracer is not None:
+            tracer.abort()
+        raise
+    finally:
+        prog.close()
+    total = max(pos, 1)
+    return Summary(
+        input=str(in_path), output=str(out_path), algorithm=proc.algorithm.name,
+        samplerate=fs, channels=ch, frames=frames, latency_samples=proc.latency_samples,
+        latency_compensated=not keep_latency, gain_reduction_max_db=gr_max,
+        gain_reduction_mean_db=gr_sum / total, reduced_share=reduced / total,
+        input_meters=meters_in.snapshot(), output_meters=meters_out.snapshot(),
+        nonfinite_inputs=proc.nonfinite_count, seconds=time.perf_counter() - t0,
+        automation_events=len(auto) if auto is not None else 0, parameters=proc.describe(),
+    )
