@@ -252,6 +252,9 @@ def main(argv=None):
     if not getattr(args, "func", None):
         ap.print_help()
         return EXIT_USAGE
+    from . import dsp
+
+    dsp.announce = dsp.announce_on_stderr
     try:
         return args.func(args)
     except _user_errors() as e:

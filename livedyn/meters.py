@@ -312,6 +312,11 @@ class MeterSet:
         self.samplerate = self.loudness.samplerate
         self.channels = self.loudness.channels
         self.meters = (self.loudness, self.true_peak, self.levels)
+        from .dsp import warm
+
+        empty = np.zeros((0, self.channels), np.float32)
+        for m in self.meters:
+            warm(m.kernel, f"meter kernel {m.kernel_name}", empty, *m.kernel_args)
 
     def process(self, block):
         """Meter one block, float32 (frames, channels), with every meter."""

@@ -72,6 +72,16 @@ class Processor:
         self.ring = np.zeros((ring_len, L.RING_COLS_PER_CHANNEL * self.channels), dtype=np.float64)
         self._no_trace = np.zeros((L.NTRACE, 0, ncols), dtype=np.float64)
         self.reset()
+        self._warm()
+
+    def _warm(self):
+        """Compile (or load) the kernel now, on a scratch copy of the state, not at first use."""
+        from .dsp import warm
+
+        x = np.zeros((1, self.channels), np.float32)
+        k = np.zeros((1, max(self.key_channels, 1)), np.float32) if self.key_channels else x
+        warm(self._kernel, f"{self.algorithm.kind} kernel", x, k, np.empty_like(x), self.p.copy(),
+             self.st.copy(), self.ring.copy(), self._no_trace)
 
     # -- parameters ---------------------------------------------------------------------------
     def set(self, name, value):
