@@ -435,3 +435,21 @@ def test_no_subnormal_state_after_loud_then_silence(algo):
     assert subnormal_count(p.st) == 0
     assert subnormal_count(p.ring) == 0
     assert subnormal_count(y.astype(np.float64)) == 0
+
+
+@pytest.mark.parametrize("fs", RATES)
+def test_rms_detector_is_a_one_pole_on_the_square(fs):
+    # The rms detector's mean square is the one-pole ms[n] = a ms[n-1] + (1-a) k[n]^2 with
+    # a = exp(-1/(tau fs)): compare with scipy.signal.lfilter on k^2 (key filtered, from the
+    # trace), read back through the documented sine-referenced dB conversion 10 log10(2 ms).
+    rng = np.random.default_rng(11)
+    x = (0.3 * rng.standard_normal(20000) * np.repeat(rng.uniform(0, 1, 20), 1000))
+    x = x.astype(np.float32)[:, None]
+    tau = 7.0
+    p = livedyn.Processor("compressor", fs, 1, detector="rms", rms_time=tau, key_hpf=100)
+    _, tr = traced(p, x)
+    a = gmr_alpha(tau / 1000, fs)
+    ms = sps.lfilter([1 - a], [1, -a], tr["key_filtered"][:, 0] ** 2)
+    want = 10 * np.log10(np.maximum(2 * ms, 1e-20))
+    ok = want > -150
+    np.testing.assert_allclose(tr["detector_db"][ok, 0], want[ok], atol=1e-6)

@@ -326,3 +326,21 @@ def test_bad_arguments_raise_one_line():
     m = meters.LoudnessMeter(48000, 2)
     with pytest.raises(ValueError, match=r"^block shape \(64,\)"):
         m.process(np.zeros(64, dtype=np.float32))
+
+
+@pytest.mark.parametrize("fs", [44100, 48000, 96000])
+def test_agrees_with_pyloudnorm_on_the_demo_scenario(fs):
+    # pyloudnorm's "DeMan" filters (the 48 kHz table) on livedyn's own rehearsal scenario: the
+    # same gain relation as in test_agrees_with_pyloudnorm, and the default filter within 0.1 LU.
+    from livedyn import demo
+
+    sc = demo.scenario(fs, seconds=8.0)
+    k = math.tan(math.pi * ld.KW_HP_F0 / fs)
+    expected = 20 * math.log10(ld.KW_HP_GAIN / (1 + k / ld.KW_HP_Q + k * k))
+    for name in ("drums", "music", "narrator"):
+        x = sc[name]
+        ours = meters.integrated_loudness(x, fs)
+        x64 = x.astype(np.float64)
+        assert ours == pytest.approx(pyln.Meter(fs).integrated_loudness(x64), abs=0.1), name
+        deman = pyln.Meter(fs, filter_class="DeMan").integrated_loudness(x64)
+        assert ours - deman == pytest.approx(expected, abs=2e-3), name
