@@ -190,20 +190,27 @@ def latency(make):
 class DistortionRow:
     release_ms: float
     thd_percent: float
+    level_db: float = -6.0  # level of the test tone, dBFS
 
     @property
     def thd_db(self):
         return 20 * math.log10(max(self.thd_percent / 100, 1e-12))
 
 
-def distortion(make, releases_ms=(2, 5, 10, 20, 50, 100, 200, 500), freq=50.0, level_db=-6.0):
+def distortion(make, releases_ms=(2, 5, 10, 20, 50, 100, 200, 500), freq=50.0, level_db=None):
     """THD of a low tone against release time (common practice, no source: a release shorter
-    than a few periods of the tone lets the gain follow the waveform, which distorts it)."""
+    than a few periods of the tone lets the gain follow the waveform, which distorts it).
+
+    ``level_db`` None: -6 dBFS, or for a limiter 6 dB above its ceiling (a limiter leaves a
+    tone below its ceiling alone, so there would be nothing to measure).
+    """
     rows = []
     for rel in releases_ms:
         proc = make()
         if "release" not in proc.schema:
             break
+        if level_db is None:
+            level_db = proc.get("ceiling") + 6.0 if proc.algorithm.kind == "limiter" else -6.0
         proc.set("release", rel)
         fs = proc.samplerate
         period = fs / freq
@@ -223,7 +230,7 @@ def distortion(make, releases_ms=(2, 5, 10, 20, 50, 100, 200, 500), freq=50.0, l
         fund = spec[k0]
         harm = [spec[k0 * h] for h in range(2, 11) if k0 * h < len(spec)]
         thd = 100 * math.sqrt(sum(h * h for h in harm)) / max(fund, 1e-30)
-        rows.append(DistortionRow(float(rel), thd))
+        rows.append(DistortionRow(float(rel), thd, float(level_db)))
     return rows
 
 

@@ -24,8 +24,39 @@ def _user_errors():
     from .params import ParamError
     from .wavio import WavError
 
-    return (ParamError, WavError, CliError, FileNotFoundError, IsADirectoryError,
-            PermissionError)
+    # OSError: any file-system failure (missing folder, a file where a folder should be, disk
+    # full, ...) is the user's to fix and gets the one-line error too.
+    return (ParamError, WavError, CliError, OSError)
+
+
+def _check_target(path, option, protect=()):
+    """Refuse a file to be written later (--summary-json, --json) before any work is done."""
+    p = Path(path)
+    for other in protect:
+        if other is not None and p.resolve() == Path(other).resolve():
+            raise CliError(f"{option} {path}: is one of the command's audio or automation "
+                           "files; choose another name")
+    if p.is_dir():
+        raise CliError(f"{option} {path}: is a directory, expected a file path")
+    if not p.parent.is_dir():
+        raise CliError(f"{option} {path}: folder {p.parent} does not exist")
+
+
+def _write_json(path, option, data):
+    from .presets import write_text_atomic
+
+    try:
+        write_text_atomic(path, json.dumps(data, indent=2, default=float) + "\n")
+    except OSError as e:
+        raise CliError(f"{option} {path}: cannot write: {e.strerror or e}") from None
+
+
+def _make_folder(path, option):
+    try:
+        Path(path).mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise CliError(f"{option} {path}: cannot make the folder ({e.strerror or e}), "
+                       "expected a folder") from None
 
 
 # ---- subcommands ----------------------------------------------------------------------------
@@ -40,6 +71,9 @@ def _setup_from(args):
 def cmd_render(args):
     from .render import render
 
+    if args.summary_json:
+        _check_target(args.summary_json, "--summary-json",
+                      (args.input, args.out, args.key, args.automation))
     summary = render(args.input, args.out, _setup_from(args), key_path=args.key,
                      automation_path=args.automation, trace_dir=args.trace,
                      blocksize=args.blocksize, keep_latency=args.keep_latency,
@@ -49,10 +83,7 @@ def cmd_render(args):
     if args.trace:
         print(f"  traces written to {args.trace}/")
     if args.summary_json:
-        from .presets import write_text_atomic
-
-        write_text_atomic(args.summary_json, json.dumps(summary.as_dict(), indent=2,
-                                                        default=float) + "\n")
+        _write_json(args.summary_json, "--summary-json", summary.as_dict())
     return 0
 
 
@@ -74,6 +105,8 @@ def _factory(args):
 def cmd_measure(args):
     from . import analysis
 
+    if args.json:
+        _check_target(args.json, "--json")
     make = _factory(args)
     proc = make()
     title = f"{proc.algorithm.name} at {args.samplerate:g} Hz"
@@ -83,7 +116,7 @@ def cmd_measure(args):
         print("(no plots: install the plot extra, pip install 'livedyn[plot]')")
         want_plot = False
     if want_plot:
-        Path(args.plot).mkdir(parents=True, exist_ok=True)
+        _make_folder(args.plot, "--plot")
     result = {}
     if args.what == "curve":
         signals = ("square", "sine") if args.signal == "both" else (args.signal,)
@@ -119,7 +152,8 @@ def cmd_measure(args):
         rows = analysis.distortion(make, freq=args.frequency)
         if not rows:
             raise CliError(f"{proc.algorithm.name} has no release control to sweep")
-        print(f"THD of a {args.frequency:g} Hz tone at -6 dBFS against release time")
+        print(f"THD of a {args.frequency:g} Hz tone at {rows[0].level_db:g} dBFS against "
+              "release time")
         print(f"{'release, ms':>12}{'THD, %':>10}{'THD, dB':>10}")
         for r in rows:
             print(f"{r.release_ms:12.1f}{r.thd_percent:10.3f}{r.thd_db:10.1f}")
@@ -129,9 +163,7 @@ def cmd_measure(args):
             analysis.plot("distortion", rows, path, title)
             print(f"plot: {path}")
     if args.json:
-        from .presets import write_text_atomic
-
-        write_text_atomic(args.json, json.dumps(result, indent=2, default=float) + "\n")
+        _write_json(args.json, "--json", result)
     return 0
 
 
@@ -166,11 +198,14 @@ def cmd_demo(args):
     from .render import Setup, render
 
     out = Path(args.out)
-    out.mkdir(parents=True, exist_ok=True)
+    _make_folder(out, "--out")
     print(f"Synthesising the rehearsal scenario ({args.seconds:g} s at {args.samplerate} Hz) "
           f"into {out}/")
-    files = demo.write_scenario(out / "scenario", samplerate=args.samplerate,
-                                seconds=args.seconds)
+    try:
+        files = demo.write_scenario(out / "scenario", samplerate=args.samplerate,
+                                    seconds=args.seconds)
+    except ValueError as e:  # the demo's own one-line range errors (--seconds, --samplerate)
+        raise CliError(str(e)) from None
     for name, track, key in DEMO_PLAN:
         dest = out / f"{name}.wav"
         s = render(files[track], dest, Setup(preset=name),

@@ -3,7 +3,9 @@
 Memory stays bounded whatever the file length: input, key, output and traces are streamed.
 By default the output is aligned with the input (the processor's latency is taken off the front
 and the tail is flushed with silence), so OUT.wav lines up with IN.wav; ``keep_latency=True``
-writes the stream exactly as a live run would produce it.
+writes the stream exactly as a live run would produce it. The latency compensated is the one
+the processor has at the start: automation that changes the lookahead moves the output after
+that change by the difference.
 """
 from __future__ import annotations
 
@@ -21,7 +23,7 @@ from . import presets as presets_mod
 from .automation import Automation, AutomationCursor
 from .dsp.layout import TRACE_NAMES
 from .meters import MeterSet
-from .params import KEY_EXTERNAL, P_KEY, ParamError
+from .params import KEY_EXTERNAL, LEVEL_FLOOR_DB, P_KEY, ParamError
 from .processor import Processor
 from .wavio import WavReader, WavWriter
 
@@ -49,8 +51,15 @@ def parse_setting(text):
     return name.strip(), value.strip()
 
 
-def build_processor(setup: Setup, samplerate, channels, key_channels=0) -> Processor:
-    """A Processor from an algorithm name and/or a preset, then --set values."""
+def build_processor(setup: Setup, samplerate, channels, key_channels=0,
+                    strict_key=False) -> Processor:
+    """A Processor from an algorithm name and/or a preset, then --set values.
+
+    Without key channels a key = external (the algorithm's default or the preset's) falls back
+    to the main input; with ``strict_key`` that raises RenderError instead (a render without
+    the key file its setting asks for). Key channels for an algorithm without a key input
+    raise RenderError.
+    """
     preset = presets_mod.load(setup.preset) if setup.preset else None
     algo = setup.algorithm
     if preset is not None:
@@ -64,15 +73,26 @@ def build_processor(setup: Setup, samplerate, channels, key_channels=0) -> Proce
         algo = preset.algorithm
     algo = algo or "compressor"
     proc = Processor(algo, samplerate, channels, key_channels=key_channels)
+    if key_channels and "key" not in proc.schema:
+        raise RenderError(f"--key: the {proc.algorithm.name} has no key input; leave out "
+                          "--key or choose an algorithm with one")
+    wants_external = "key" in proc.schema and int(proc.schema["key"].default) == KEY_EXTERNAL
     if key_channels and "key" in proc.schema:
         proc.set("key", "external")
     if preset is not None:
         for name, v in preset.values.items():
-            if name == "key" and key_channels == 0 and int(v) == KEY_EXTERNAL:
-                continue  # no key input here: stay on the main input
+            if name == "key":
+                wants_external = int(v) == KEY_EXTERNAL
+                if key_channels == 0 and wants_external:
+                    continue  # no key input here: stay on the main input
             proc.set(name, v)
     for name, value in setup.settings:
         proc.set(name, value)
+        if name == "key":
+            wants_external = int(proc.p[P_KEY]) == KEY_EXTERNAL
+    if strict_key and key_channels == 0 and wants_external:
+        raise RenderError(f"{proc.algorithm.name} is set to key = external but no --key "
+                          "file was given (or use --set key=main)")
     return proc
 
 
@@ -103,7 +123,8 @@ class Summary:
         def f(v, unit):
             if isinstance(v, (list, tuple)):
                 v = max(v) if v else None
-            return "-inf" if v is None or (isinstance(v, float) and math.isinf(v)) else \
+            # the meters read silence as LEVEL_FLOOR_DB, which is not a level to print
+            return "-inf" if v is None or math.isinf(v) or v <= LEVEL_FLOOR_DB else \
                 f"{v:.1f} {unit}"
 
         dur = self.frames / self.samplerate
@@ -157,7 +178,12 @@ class _TraceWriter:
     """Per-stage traces as float WAV files, one file a stage (columns = channels)."""
 
     def __init__(self, folder: Path, samplerate, proc: Processor, key_channels):
-        folder.mkdir(parents=True, exist_ok=True)
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+        except OSError as e:
+            raise RenderError(f"--trace {folder}: cannot make the folder "
+                              f"({e.strerror or e}), expected a folder for the trace files"
+                              ) from None
         self.folder = folder
         self.writers = {}
         ngain = proc.channels if proc.describe().get("link") == "none" else 1
@@ -196,8 +222,17 @@ def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None,
     if isinstance(blocksize, bool) or int(blocksize) != blocksize or not 1 <= blocksize <= 65536:
         raise RenderError(f"--blocksize {blocksize!r}: expected a whole number from 1 to 65536")
     blocksize = int(blocksize)
-    if Path(out_path).resolve() == Path(in_path).resolve():
-        raise RenderError(f"--out {out_path}: is the input file; choose another name")
+    others = ((in_path, "input"), (key_path, "key"), (automation_path, "automation"))
+    for other, what in others:
+        if other is not None and Path(out_path).resolve() == Path(other).resolve():
+            raise RenderError(f"--out {out_path}: is the {what} file; choose another name")
+    if trace_dir is not None:
+        for stem in ("input", "output", "key", *TRACE_NAMES):
+            t = (Path(trace_dir) / f"{stem}.wav").resolve()
+            for other, what in (*others, (out_path, "output")):
+                if other is not None and t == Path(other).resolve():
+                    raise RenderError(f"--trace {trace_dir}: its {t.name} would replace the "
+                                      f"{what} file; choose another folder")
     t0 = time.perf_counter()
     with WavReader(in_path) as src:
         fs, ch, frames = src.samplerate, src.channels, src.frames
@@ -215,10 +250,7 @@ def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None,
                                   f"{in_path} (the key must run alongside the input)")
             kch = key.channels
         try:
-            proc = build_processor(setup, fs, ch, kch)
-            if "key" in proc.schema and int(proc.p[P_KEY]) == KEY_EXTERNAL and key is None:
-                raise RenderError(f"{proc.algorithm.name} is set to key = external but no --key "
-                                  "file was given (or use --set key=main)")
+            proc = build_processor(setup, fs, ch, kch, strict_key=True)
             auto = None
             if automation_path is not None:
                 auto = Automation.load(automation_path, proc.schema)
