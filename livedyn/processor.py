@@ -14,7 +14,7 @@ from . import algorithms
 from .dsp import layout as L
 from .params import (
     KEY_EXTERNAL, LINK_MEAN, LINK_NONE, MAX_LOOKAHEAD_MS, NPARAM, P_KEY, P_LAW, P_LINK,
-    P_LOOKAHEAD, P_SAMPLERATE, P_TOPOLOGY, P_TRUE_PEAK, TOPOLOGY_FEEDBACK, ParamError,
+    P_LOOKAHEAD, P_SAMPLERATE, P_TOPOLOGY, P_TRUE_PEAK, TOPOLOGY_FEEDBACK, ALL, ParamError,
 )
 
 MAX_CHANNELS = 8
@@ -53,6 +53,8 @@ class Processor:
         self._kernel = self.algorithm.kernel()
 
         self.p = np.zeros(NPARAM, dtype=np.float64)
+        for prm in ALL.values():  # every slot sane, also those this algorithm lacks
+            self.p[prm.slot] = prm.default
         for prm in self.schema:
             self.p[prm.slot] = prm.default
         self.p[P_SAMPLERATE] = samplerate

@@ -58,16 +58,32 @@ def delay_samples(lookahead_ms, fs):
 
 
 @nb.njit(**JIT)
+def xfade_len(fs):
+    return max(1.0, math.floor(DELAY_XFADE_MS * fs / 1000.0 + 0.5))
+
+
+@nb.njit(**JIT)
 def start_block_delay(st, d_new, fs):
-    """Block boundary: take a new main-path delay, starting a crossfade from the old one."""
+    """Block boundary: take a new main-path delay, starting a crossfade from the old one.
+
+    A change that arrives while a crossfade is running waits until it has finished (the
+    sample loop starts it then, see ``next_delay``), so the old tap is never dropped half-faded.
+    """
     if st[S_READY, 0] == 0.0:
         st[S_DCUR, 0] = d_new
         st[S_DOLD, 0] = d_new
         st[S_XF, 0] = 0.0
-    elif d_new != int(st[S_DCUR, 0]):
+    else:
+        next_delay(st, d_new, fs)
+
+
+@nb.njit(**JIT)
+def next_delay(st, d_new, fs):
+    """Start a crossfade to d_new if none is running and the delay differs."""
+    if st[S_XF, 0] <= 0.0 and d_new != int(st[S_DCUR, 0]):
         st[S_DOLD, 0] = st[S_DCUR, 0]
         st[S_DCUR, 0] = d_new
-        st[S_XF, 0] = max(1.0, math.floor(DELAY_XFADE_MS * fs / 1000.0 + 0.5))
+        st[S_XF, 0] = xfade_len(fs)
 
 
 @nb.njit(**JIT)
@@ -132,7 +148,7 @@ def dynamics_block(x, key, out, p, st, ring, tr):
     ngain = ch if link == LINK_NONE else 1
 
     t_thr = p[P_THRESHOLD]
-    t_slope = 1.0 - 1.0 / p[P_RATIO]
+    t_slope = 1.0 - 1.0 / p[P_RATIO] if p[P_RATIO] >= 1.0 else 0.0  # (no ratio: slot unused)
     t_knee = p[P_KNEE]
     t_mk = p[P_MAKEUP]
     t_range = p[P_RANGE]
@@ -140,7 +156,8 @@ def dynamics_block(x, key, out, p, st, ring, tr):
     t_ceil = p[P_CEILING]
     t_hyst = p[P_HYSTERESIS]
 
-    start_block_delay(st, delay_samples(p[P_LOOKAHEAD], fs), fs)
+    d_target = delay_samples(p[P_LOOKAHEAD], fs)
+    start_block_delay(st, d_target, fs)
     if st[S_READY, 0] == 0.0:
         st[S_THR, 0] = t_thr
         st[S_SLOPE, 0] = t_slope
@@ -166,7 +183,7 @@ def dynamics_block(x, key, out, p, st, ring, tr):
     d_cur = int(st[S_DCUR, 0])
     d_old = int(st[S_DOLD, 0])
     xf = st[S_XF, 0]
-    xf_len = max(1.0, math.floor(DELAY_XFADE_MS * fs / 1000.0 + 0.5))
+    xf_len = xfade_len(fs)
     w = int(st[S_WPOS, 0])
     ring_len = ring.shape[0]
     nonfinite = st[S_NONFINITE, 0]
@@ -244,10 +261,18 @@ def dynamics_block(x, key, out, p, st, ring, tr):
             if linear:
                 amp = math.sqrt(2.0 * lv) if rms else lv
                 if decoupled:
-                    # Smooth decoupled peak detector [1], eq. (17), on the level.
-                    e1 = a_rel * st[R_ENV1, g] + (1.0 - a_rel) * amp
-                    if amp > e1:
+                    # Smooth decoupled peak detector [1], eq. (17), on the level; hold delays
+                    # the release of its first stage.
+                    e1 = st[R_ENV1, g]
+                    if amp >= e1:
                         e1 = amp
+                        st[R_HOLD, g] = hold_n
+                    elif st[R_HOLD, g] > 0.0:
+                        st[R_HOLD, g] -= 1.0
+                    else:
+                        e1 = a_rel * e1 + (1.0 - a_rel) * amp
+                        if amp > e1:
+                            e1 = amp
                     e1 = flush(e1)
                     st[R_ENV1, g] = e1
                     env = flush(a_att * st[R_ENV, g] + (1.0 - a_att) * e1)
@@ -346,6 +371,12 @@ def dynamics_block(x, key, out, p, st, ring, tr):
             out[n, c] = o
         if xf > 0.0:
             xf -= 1.0
+            if xf <= 0.0 and d_target != d_cur:
+                st[S_XF, 0] = 0.0
+                next_delay(st, d_target, fs)
+                d_cur = int(st[S_DCUR, 0])
+                d_old = int(st[S_DOLD, 0])
+                xf = st[S_XF, 0]
         w += 1
         if w >= ring_len:
             w = 0

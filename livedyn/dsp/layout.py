@@ -35,6 +35,8 @@ S_CLAMP = 16  # limiter: samples where the final clamp cut the smoothed gain by 
 S_AUTOMAKEUP_DB = 17
 S_ATT = 18  # limiter: box length in use, samples
 S_LOOK = 19  # limiter: hold window in use, samples
+S_LIM_NGAIN = 23  # limiter: gain channels in use (1 linked, channels unlinked)
+S_LIM_TP = 61  # limiter: true-peak detection in use
 
 # Filter coefficients (columns 0..4 = b0, b1, b2, a1, a2).
 C_HPF = 20

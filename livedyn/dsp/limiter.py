@@ -12,10 +12,16 @@ the delayed sample x[n - L] is built in three steps:
 3. release: g[n] = min(b[n], a g[n-1] + (1 - a) b[n]) with the release one-pole a (and hold),
    which never rises above b.
 
-A last clamp g <= r[n - L] (and the requirement of the old delay tap during a lookahead
+A last clamp g <= r of the sample leaving (and of the old delay tap during a lookahead
 crossfade) absorbs floating-point rounding; the kernel counts every sample where it cut the gain
 by more than 1e-9 relative (``S_CLAMP``), so tests can show that the design, not the clamp, holds
 the ceiling. An attack longer than the lookahead acts as the lookahead.
+
+Changes of structure (lookahead, attack, true-peak detection, link) take effect at a sample
+where no delay crossfade is running: the queues are rebuilt from the per-channel requirement
+history and the moving average is restarted from the smallest requirement its window can
+see, which is conservative (the gain may dip, never rise past the ceiling). While the delay
+crossfades, the hold window covers both the old and the new delay.
 
 With ``true_peak = on`` the requirement also uses the 4x oversampled inter-sample peak
 (ITU-R BS.1770-4 Annex 2 interpolation). The main path is then delayed by TP_DELAY more samples
@@ -33,9 +39,9 @@ from ..params import (
     DELAY_XFADE_MS, GLIDE_MS, LINK_NONE, P_ATTACK, P_CEILING, P_HOLD, P_LINK, P_LOOKAHEAD, P_RELEASE,
     P_SAMPLERATE, P_TRUE_PEAK,
 )
-from .dynamics import glide, read_delayed, start_block_delay
+from .dynamics import glide, read_delayed
 from .layout import (
-    R_BOX, R_DQ_HEAD, R_DQ_LEN, R_G, R_GAIN, R_HOLD, R_MEAS, R_TAPS, R_TP, R_TP_POS, RING_DQ_IDX,
+    S_LIM_NGAIN, S_LIM_TP, R_BOX, R_DQ_HEAD, R_DQ_LEN, R_G, R_GAIN, R_HOLD, R_MEAS, R_TAPS, R_TP, R_TP_POS, RING_DQ_IDX,
     RING_DQ_VAL, RING_M, RING_REQ, S_ATT, S_CEIL, S_CLAMP, S_DCUR, S_DOLD, S_FRAMES, S_GR_MAX,
     S_LOOK, S_NONFINITE, S_READY, S_WPOS, S_XF, T_CURVE, T_GAIN, T_KEY, T_LEVEL, T_TOTAL,
 )
@@ -65,7 +71,80 @@ def limiter_init(st, ring, channels):
 
 
 @nb.njit(**JIT)
-def _rebuild_box(ring, col, w, n_box):
+def _req(ring, ch, i, g, ngain):
+    """Requirement of gain channel g at ring row i: its channel's, or the least over channels."""
+    if ngain == 1:
+        r = ring[i, ch + RING_REQ]
+        for c in range(1, ch):
+            v = ring[i, ch + 4 * c + RING_REQ]
+            if v < r:
+                r = v
+        return r
+    return ring[i, ch + 4 * g + RING_REQ]
+
+
+@nb.njit(**JIT)
+def _dq_push(ring, st, col, g, v, t):
+    """Push (v, t) onto gain channel g's monotonic queue (values increase from head to tail)."""
+    n_ring = ring.shape[0]
+    h = int(st[R_DQ_HEAD, g])
+    ln = int(st[R_DQ_LEN, g])
+    while ln > 0:
+        back = h + ln - 1
+        if back >= n_ring:
+            back -= n_ring
+        if ring[back, col + RING_DQ_VAL] >= v:
+            ln -= 1
+        else:
+            break
+    slot = h + ln
+    if slot >= n_ring:
+        slot -= n_ring
+    ring[slot, col + RING_DQ_VAL] = v
+    ring[slot, col + RING_DQ_IDX] = t
+    st[R_DQ_LEN, g] = ln + 1
+
+
+@nb.njit(**JIT)
+def _rebuild(ring, st, ch, w, t, window, att, ngain):
+    """Restart queues and moving averages for a new structure (see the module notes)."""
+    n_ring = ring.shape[0]
+    g_old = 1.0
+    for g in range(int(st[S_LIM_NGAIN, 0])):
+        if st[R_G, g] < g_old:
+            g_old = st[R_G, g]
+    for g in range(ngain):
+        col = ch + 4 * g
+        st[R_DQ_HEAD, g] = 0.0
+        st[R_DQ_LEN, g] = 0.0
+        for back in range(window, 0, -1):
+            j = w - back
+            if j < 0:
+                j += n_ring
+            _dq_push(ring, st, col, g, _req(ring, ch, j, g, ngain), t - back)
+        span = min(window + att, n_ring - 1)
+        mmin = 1.0
+        for back in range(1, span + 1):
+            j = w - back
+            if j < 0:
+                j += n_ring
+            v = _req(ring, ch, j, g, ngain)
+            if v < mmin:
+                mmin = v
+        for back in range(1, att + 2):
+            j = w - back
+            if j < 0:
+                j += n_ring
+            ring[j, col + RING_M] = mmin
+        st[R_BOX, g] = (att + 1.0) * mmin
+        st[R_G, g] = min(g_old, mmin)
+    st[S_LOOK, 0] = window
+    st[S_ATT, 0] = att
+    st[S_LIM_NGAIN, 0] = ngain
+
+
+@nb.njit(**JIT)
+def _box_sum(ring, col, w, n_box):
     s = 0.0
     n = ring.shape[0]
     for i in range(n_box):
@@ -84,50 +163,47 @@ def limiter_block(x, key, out, p, st, ring, tr):
     fs = p[P_SAMPLERATE]
     tracing = tr.shape[1] >= frames and frames > 0
     n_ring = ring.shape[0]
-    tp = p[P_TRUE_PEAK] > 0.5
-    look = int(math.floor(p[P_LOOKAHEAD] * fs / 1000.0 + 0.5))
-    att = int(math.floor(p[P_ATTACK] * fs / 1000.0 + 0.5))
-    if att > look:
-        att = look
-    window = look + (TP_DELAY + TP_SPREAD if tp else 0)
+
+    # ---- targets of this block --------------------------------------------------------------
+    tp_t = p[P_TRUE_PEAK] > 0.5
+    look_t = int(math.floor(p[P_LOOKAHEAD] * fs / 1000.0 + 0.5))
+    att_t = int(math.floor(p[P_ATTACK] * fs / 1000.0 + 0.5))
+    if att_t > look_t:
+        att_t = look_t
+    extra_t = TP_DELAY + TP_SPREAD if tp_t else 0
+    window_t = look_t + extra_t
+    d_t = look_t + (TP_DELAY if tp_t else 0)
+    ngain_t = ch if int(p[P_LINK]) == LINK_NONE else 1
     a_rel = one_pole_coeff(p[P_RELEASE], fs)
     hold_n = math.floor(p[P_HOLD] * fs / 1000.0 + 0.5)
     g_glide = 1.0 - one_pole_coeff(GLIDE_MS, fs)
-    ngain = ch if int(p[P_LINK]) == LINK_NONE else 1
     t_ceil = p[P_CEILING]
-
-    # The main path delay follows the lookahead (plus the true-peak delay).
-    start_block_delay(st, look + (TP_DELAY if tp else 0), fs)
-    d_cur = int(st[S_DCUR, 0])
-    d_old = int(st[S_DOLD, 0])
-    xf = st[S_XF, 0]
     xf_len = max(1.0, math.floor(DELAY_XFADE_MS * fs / 1000.0 + 0.5))
-    tpd = TP_DELAY if tp else 0
 
     w = int(st[S_WPOS, 0])
     frame0 = st[S_FRAMES, 0]
     if st[S_READY, 0] == 0.0:
         st[S_CEIL, 0] = t_ceil
-        st[S_LOOK, 0] = window
-        st[S_ATT, 0] = att
-        for g in range(ngain):
-            st[R_BOX, g] = att + 1.0
+        st[S_DCUR, 0] = d_t
+        st[S_DOLD, 0] = d_t
+        st[S_XF, 0] = 0.0
+        st[S_LOOK, 0] = window_t
+        st[S_ATT, 0] = att_t
+        st[S_LIM_NGAIN, 0] = ngain_t
+        st[S_LIM_TP, 0] = 1.0 if tp_t else 0.0
+        for g in range(ngain_t):
+            st[R_BOX, g] = att_t + 1.0
         st[S_READY, 0] = 1.0
-    # A new window or attack: rebuild the queue from the requirement history and the box sum.
-    if int(st[S_LOOK, 0]) != window or int(st[S_ATT, 0]) != att:
-        for g in range(ngain):
-            col = ch + 4 * g
-            st[R_DQ_HEAD, g] = 0.0
-            st[R_DQ_LEN, g] = 0.0
-            for back in range(window, 0, -1):
-                j = w - back
-                if j < 0:
-                    j += n_ring
-                _dq_push(ring, st, col, g, ring[j, col + RING_REQ], frame0 - back)
-            st[R_BOX, g] = _rebuild_box(ring, col, w - 1 if w > 0 else n_ring - 1, att + 1)
-        st[S_LOOK, 0] = window
-        st[S_ATT, 0] = att
-    n_box = att + 1.0
+
+    tp = st[S_LIM_TP, 0] > 0.5
+    window = int(st[S_LOOK, 0])
+    att = int(st[S_ATT, 0])
+    ngain = int(st[S_LIM_NGAIN, 0])
+    d_cur = int(st[S_DCUR, 0])
+    d_old = int(st[S_DOLD, 0])
+    xf = st[S_XF, 0]
+    pending = (window != window_t or att != att_t or ngain != ngain_t or d_cur != d_t
+               or tp != tp_t)
 
     tp_hist = st[R_TP:R_TP + TP_PHASE_TAPS]
     tp_taps = st[R_TAPS:R_TAPS + 4, :TP_PHASE_TAPS]
@@ -138,6 +214,22 @@ def limiter_block(x, key, out, p, st, ring, tr):
     gr_max = 0.0
     for n in range(frames):
         t = frame0 + n
+        # ---- structure changes, at a sample with no crossfade running --------------------
+        if pending and xf <= 0.0:
+            if d_t != d_cur:
+                d_old = d_cur
+                d_cur = d_t
+                xf = xf_len
+                # cover both taps while they crossfade
+                w_use = window_t if window_t > window else window
+            else:
+                w_use = window_t
+            tp = tp_t
+            _rebuild(ring, st, ch, w, t, w_use, att_t, ngain_t)
+            window = w_use
+            att = att_t
+            ngain = ngain_t
+            pending = window != window_t
         if ceil != t_ceil:
             ceil = glide(ceil, t_ceil, g_glide)
             ceil_lin = db_to_amp(ceil)
@@ -155,21 +247,15 @@ def limiter_block(x, key, out, p, st, ring, tr):
                 if a_tp > a:
                     a = a_tp
             st[R_MEAS, c] = a
+            ring[w, ch + 4 * c + RING_REQ] = ceil_lin / a if a > ceil_lin else 1.0
         if tp:
             tp_pos += 1
             st[R_TP_POS, 0] = 0 if tp_pos >= TP_PHASE_TAPS else tp_pos
         refresh = (t % SUM_REFRESH) == 0.0
+        n_box = att + 1.0
         for g in range(ngain):
             col = ch + 4 * g
-            if ngain == 1:
-                a = st[R_MEAS, 0]
-                for c in range(1, ch):
-                    if st[R_MEAS, c] > a:
-                        a = st[R_MEAS, c]
-            else:
-                a = st[R_MEAS, g]
-            r = ceil_lin / a if a > ceil_lin else 1.0
-            ring[w, col + RING_REQ] = r
+            r = _req(ring, ch, w, g, ngain)
             # 1. minimum over the window
             _dq_push(ring, st, col, g, r, t)
             h = int(st[R_DQ_HEAD, g])
@@ -187,12 +273,12 @@ def limiter_block(x, key, out, p, st, ring, tr):
             oldest = ring[j, col + RING_M]
             ring[w, col + RING_M] = m
             if refresh:
-                box = _rebuild_box(ring, col, w, att + 1)
+                box = _box_sum(ring, col, w, att + 1)
             else:
                 box = st[R_BOX, g] + m - oldest
             st[R_BOX, g] = box
             b = box / n_box
-            if b > m and att == 0:
+            if att == 0:
                 b = m
             # 3. release with hold, never above b
             gp = st[R_G, g]
@@ -207,16 +293,17 @@ def limiter_block(x, key, out, p, st, ring, tr):
                 if gn > b:
                     gn = b
             # last clamp: the requirement of the sample(s) this gain is applied to
-            i = w - d_cur + tpd
+            i = w - d_cur
             if i < 0:
                 i += n_ring
-            lim = ring[i, col + RING_REQ]
+            lim = _req(ring, ch, i, g, ngain)
             if xf > 0.0:
-                i = w - d_old + tpd
+                i = w - d_old
                 if i < 0:
                     i += n_ring
-                if ring[i, col + RING_REQ] < lim:
-                    lim = ring[i, col + RING_REQ]
+                v = _req(ring, ch, i, g, ngain)
+                if v < lim:
+                    lim = v
             if gn > lim:
                 if gn > lim * (1.0 + 1e-9):
                     clamps += 1.0
@@ -227,6 +314,11 @@ def limiter_block(x, key, out, p, st, ring, tr):
             if -gdb > gr_max:
                 gr_max = -gdb
             if tracing:
+                a = st[R_MEAS, g]
+                if ngain == 1:
+                    for c in range(1, ch):
+                        if st[R_MEAS, c] > a:
+                            a = st[R_MEAS, c]
                 tr[T_KEY, n, g] = a
                 tr[T_LEVEL, n, g] = amp_to_db(a)
                 tr[T_CURVE, n, g] = amp_to_db(r)
@@ -235,8 +327,7 @@ def limiter_block(x, key, out, p, st, ring, tr):
         for c in range(ch):
             g = 0 if ngain == 1 else c
             xd = read_delayed(ring, w, c, d_cur, d_old, xf, xf_len)
-            o = xd * st[R_GAIN, g]
-            out[n, c] = o
+            out[n, c] = xd * st[R_GAIN, g]
         if xf > 0.0:
             xf -= 1.0
         w += 1
@@ -244,31 +335,12 @@ def limiter_block(x, key, out, p, st, ring, tr):
             w = 0
 
     st[S_CEIL, 0] = ceil
+    st[S_DCUR, 0] = d_cur
+    st[S_DOLD, 0] = d_old
     st[S_XF, 0] = xf
+    st[S_LIM_TP, 0] = 1.0 if tp else 0.0
     st[S_WPOS, 0] = w
     st[S_NONFINITE, 0] = nonfinite
     st[S_CLAMP, 0] = clamps
     st[S_FRAMES, 0] += frames
     st[S_GR_MAX, 0] = gr_max
-
-
-@nb.njit(**JIT)
-def _dq_push(ring, st, col, g, v, t):
-    """Push (v, t) onto channel g's monotonic queue (values increase from head to tail)."""
-    n_ring = ring.shape[0]
-    h = int(st[R_DQ_HEAD, g])
-    ln = int(st[R_DQ_LEN, g])
-    while ln > 0:
-        back = h + ln - 1
-        if back >= n_ring:
-            back -= n_ring
-        if ring[back, col + RING_DQ_VAL] >= v:
-            ln -= 1
-        else:
-            break
-    slot = h + ln
-    if slot >= n_ring:
-        slot -= n_ring
-    ring[slot, col + RING_DQ_VAL] = v
-    ring[slot, col + RING_DQ_IDX] = t
-    st[R_DQ_LEN, g] = ln + 1
