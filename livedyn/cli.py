@@ -217,6 +217,158 @@ def cmd_demo(args):
     return 0
 
 
+def _channel_list(text, what):
+    if text is None:
+        return None
+    try:
+        chans = [int(t) for t in str(text).split(",") if t.strip()]
+    except ValueError:
+        raise CliError(f"{what} {text!r}: expected channel numbers such as 1,2") from None
+    if not chans or min(chans) < 1:
+        raise CliError(f"{what} {text!r}: expected channel numbers from 1, such as 1,2")
+    return chans
+
+
+def cmd_devices(args):
+    from .engine.stream import DeviceError, list_devices
+
+    try:
+        devs = list_devices()
+    except DeviceError as e:
+        raise CliError(str(e)) from None
+    if not devs:
+        print("no audio devices found: install PortAudio (libportaudio2), check that the sound "
+              "system sees the card, or use 'livedyn run --headless'")
+        return 0
+    print(f"{'#':>3}  {'name':32} {'host API':28} {'in':>3} {'out':>4} {'rate':>8}")
+    for d in devs:
+        print(f"{d['index']:>3}  {d['name'][:32]:32} {d['hostapi'][:28]:28} {d['inputs']:>3} "
+              f"{d['outputs']:>4} {d['samplerate']:>8.0f}")
+    return 0
+
+
+def _status_line(snap, t):
+    def peaks(v):
+        return "/".join("-inf" if x <= -199 else f"{x:.1f}" for x in v) or "-"
+
+    load = snap["callback_load"]
+    return (f"{t:6.1f} s  in {peaks(snap['peak_in_dbfs'])}  out {peaks(snap['peak_out_dbfs'])} "
+            f"dBFS  GR {snap['gain_reduction_db']:.1f} dB  load {100 * load['median']:.1f} % "
+            f"(max {100 * load['max']:.0f} %)  late {snap['late_blocks']}  flagged "
+            f"{snap['flagged_blocks']}")
+
+
+def cmd_run(args):
+    import os
+    import time
+
+    from .engine import stream as st
+    from .engine.engine import ArraySource, Engine, FileSource
+    from .engine.jackserver import JackServer
+    from .render import build_processor
+
+    print(CAUTION, flush=True)
+    if args.seconds is not None and not args.seconds > 0:
+        raise CliError(f"--seconds {args.seconds:g}: expected a duration above 0")
+    if not 16 <= args.blocksize <= 8192:
+        raise CliError(f"--blocksize {args.blocksize}: expected 16 to 8192 frames")
+    fs = args.samplerate
+    main_in = _channel_list(args.main_inputs, "--main-inputs")
+    key_in = _channel_list(args.key_inputs, "--key-inputs")
+    outs = _channel_list(args.outputs, "--outputs")
+    setup = _setup_from(args)
+    main_src = key_src = None
+    seconds = args.seconds
+    if args.key_demo:
+        from . import demo
+
+        length = seconds if seconds is not None else 16.0
+        sc = demo.scenario(int(fs), seconds=max(length, 2.0))
+        main_src = ArraySource(sc["music"], loop=args.loop)
+        key_src = ArraySource(sc["narrator"], loop=args.loop)
+        if setup.algorithm is None and setup.preset is None:
+            setup.preset = "bed-under-narrator"
+        seconds = length if seconds is None else seconds
+    if args.input_file:
+        main_src = FileSource(args.input_file, loop=args.loop, samplerate=fs)
+    if args.key_file:
+        key_src = FileSource(args.key_file, loop=args.loop, samplerate=fs)
+    ch = main_src.channels if main_src is not None else (len(main_in) if main_in else 2)
+    kch = key_src.channels if key_src is not None else (len(key_in) if key_in else 0)
+    proc = build_processor(setup, fs, ch, kch)
+    if args.headless and seconds is None and main_src is None:
+        seconds = 10.0
+
+    server = None
+    if args.headless:
+        need_in = max([2] + (main_in or []) + (key_in or []))
+        need_out = max([2] + (outs or []))
+        server = JackServer(int(fs), args.blocksize, capture=need_in, playback=need_out,
+                            realtime=args.realtime).start()
+        st.reinitialise()
+        print(f"headless: JACK server {server.name} (dummy backend, {fs:g} Hz, "
+              f"{args.blocksize} frames, real time {'granted' if server.realtime_granted else 'off'})",
+              flush=True)
+    try:
+        eng = Engine(proc, args.blocksize, device=args.device if not args.headless else "system",
+                     input_device=args.input_device, output_device=args.output_device,
+                     main_inputs=main_in, key_inputs=key_in, outputs=outs, main_source=main_src,
+                     key_source=key_src, record_dir=args.record, monitor=args.monitor)
+    except BaseException:
+        st._sd()._terminate()
+        if server is not None:
+            server.stop()
+        raise
+    print(f"{proc.algorithm.name}: " + ", ".join(f"{k} {v}" for k, v in proc.describe().items()))
+    print(f"latency: processor {proc.latency_samples} samples", end="")
+    eng.start()
+    print(f"; stream reports input {1000 * eng.stream.input_latency:.2f} ms, output "
+          f"{1000 * eng.stream.output_latency:.2f} ms", flush=True)
+    t0 = time.monotonic()
+    next_line = 1.0
+    failure = None
+    try:
+        while True:
+            time.sleep(0.05)
+            t = time.monotonic() - t0
+            if not eng.watch() or (server is not None and not server.alive()):
+                failure = eng.error or "the JACK server stopped"
+                break
+            if t >= next_line:
+                print(_status_line(eng.snapshot(), t), flush=True)
+                next_line += 1.0
+            if seconds is not None and t >= seconds:
+                break
+            if main_src is not None and not args.loop and eng.source_finished:
+                break
+    except KeyboardInterrupt:
+        print("stopping", flush=True)
+    snap = eng.snapshot()
+    if failure:
+        eng.error = failure
+    eng.stop()
+    if args.stats_json:
+        from .presets import write_text_atomic
+
+        snap["realtime_granted"] = bool(server.realtime_granted) if server else None
+        write_text_atomic(args.stats_json, json.dumps(snap, indent=2, default=float) + "\n")
+    if failure:
+        print(f"livedyn: error: {failure}", file=sys.stderr, flush=True)
+        if server is not None:
+            server.reclaim()
+        sys.stdout.flush()
+        os._exit(3)  # PortAudio cannot be shut down cleanly once its server is gone
+    st._sd()._terminate()
+    if server is not None:
+        server.stop()
+    print(f"done: {snap['blocks']} blocks, {snap['late_blocks']} late, "
+          f"{snap['flagged_blocks']} flagged, callback load median "
+          f"{100 * snap['callback_load']['median']:.1f} % / 99.9th "
+          f"{100 * snap['callback_load']['p99_9']:.1f} % of the block period"
+          + (f"; recorded to {args.record}/" if args.record else ""))
+    return 0
+
+
 # ---- parser ---------------------------------------------------------------------------------
 
 def _add_setup(p):
@@ -273,6 +425,38 @@ def build_parser():
     d.add_argument("--seconds", type=float, default=16.0)
     d.add_argument("--samplerate", type=int, default=48000)
     d.set_defaults(func=cmd_demo)
+
+    rn = sub.add_parser("run", help="run a processor live on a soundcard or headless",
+                        description="Run a processor live. " + CAUTION)
+    rn.add_argument("--device", metavar="D", help="device index or name (both directions)")
+    rn.add_argument("--input-device", metavar="D")
+    rn.add_argument("--output-device", metavar="D")
+    rn.add_argument("--samplerate", type=float, default=48000.0)
+    rn.add_argument("--blocksize", type=int, default=64, metavar="N")
+    _add_setup(rn)
+    rn.add_argument("--main-inputs", metavar="1,2", help="device channels of the main input")
+    rn.add_argument("--key-inputs", metavar="3", help="device channels of the key input")
+    rn.add_argument("--outputs", metavar="1,2", help="device channels that carry the output")
+    rn.add_argument("--input-file", metavar="F", help="play a WAV file as the main input")
+    rn.add_argument("--key-file", metavar="F", help="play a WAV file as the key input")
+    rn.add_argument("--key-demo", action="store_true",
+                    help="the rehearsal demo: the narrator ducks the music bed")
+    rn.add_argument("--loop", action="store_true", help="loop file and demo inputs")
+    rn.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds")
+    rn.add_argument("--record", metavar="DIR",
+                    help="write main.wav, key.wav, out.wav and automation.txt here")
+    rn.add_argument("--stats-json", metavar="FILE", help="write the run's statistics here")
+    rn.add_argument("--monitor", choices=["out", "key", "delta"], default="out",
+                    help="what the outputs carry: processed, filtered key, or what was removed")
+    rn.add_argument("--no-ui", action="store_true", help="print one status line a second")
+    rn.add_argument("--headless", action="store_true",
+                    help="start a JACK server with its dummy backend (no soundcard needed)")
+    rn.add_argument("--realtime", action="store_true",
+                    help="ask for real-time scheduling where the system allows it")
+    rn.set_defaults(func=cmd_run)
+
+    dv = sub.add_parser("devices", help="list audio devices", description="List audio devices.")
+    dv.set_defaults(func=cmd_devices)
 
     ps = sub.add_parser("presets", help="list the shipped presets",
                         description="List the shipped presets.")

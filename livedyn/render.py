@@ -213,11 +213,15 @@ class _TraceWriter:
 
 def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None, trace_dir=None,
            blocksize=DEFAULT_BLOCKSIZE, keep_latency=False, subtype=None,
-           progress_min_seconds=30.0) -> Summary:
+           progress_min_seconds=30.0, safety_ceiling_db=None) -> Summary:
     """Render ``in_path`` through the configured processor into ``out_path``.
 
     Raises RenderError / ParamError / WavError with a one-line message; on any error the output
     file (and an existing file of that name) is left as it was.
+
+    ``safety_ceiling_db`` applies the live engine's last stage (non-finite samples mute their
+    block, then the ceiling) to every block, so that a live recording can be compared with a
+    render sample for sample.
     """
     if isinstance(blocksize, bool) or int(blocksize) != blocksize or not 1 <= blocksize <= 65536:
         raise RenderError(f"--blocksize {blocksize!r}: expected a whole number from 1 to 65536")
@@ -259,7 +263,7 @@ def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None,
                                       f"expected {fs} Hz like {in_path}")
             return _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize,
                         keep_latency, subtype or _output_subtype(src.subtype), t0,
-                        progress_min_seconds)
+                        progress_min_seconds, safety_ceiling_db)
         finally:
             if key is not None:
                 key.close()
@@ -270,7 +274,7 @@ def _output_subtype(in_subtype):
 
 
 def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_latency, subtype,
-         t0, progress_min_seconds):
+         t0, progress_min_seconds, safety_ceiling_db=None):
     fs, ch, frames = src.samplerate, src.channels, src.frames
     kch = key.channels if key is not None else 0
     lat = 0 if keep_latency else proc.latency_samples
@@ -285,6 +289,18 @@ def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_lat
     to_skip = lat
     pos = 0
     key_blocks = key.blocks(blocksize) if key is not None else None
+    safety = None
+    if safety_ceiling_db is not None:
+        from .engine.callback import F_CEIL, F_GAIN, F_TARGET, SAFE_SIZE, STATS_SIZE, safety_stage
+
+        safe = np.zeros(SAFE_SIZE)
+        safe[F_GAIN] = safe[F_TARGET] = 1.0
+        safe[F_CEIL] = 10 ** (safety_ceiling_db / 20)
+        safety_stats = np.zeros(STATS_SIZE, np.int64)
+
+        def safety(y):
+            safety_stage(y, len(y), y.shape[1], safe, 0, safety_stats)
+            return y
     try:
         with WavWriter(out_path, int(fs), ch, subtype, frames_hint=frames) as out:
             def emit(y):
@@ -299,6 +315,7 @@ def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_lat
 
             def run_block(x, k, start, stop):
                 nonlocal gr_sum, gr_max, reduced
+                ys = []
                 for s0, s1, due in cursor.split(start, stop):
                     for _, name, value in due:
                         proc.set(name, value)
@@ -317,7 +334,9 @@ def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_lat
                         for name in TRACE_NAMES:
                             tracer.write(name, tr[name])
                         tracer.write("output", y)
-                    emit(y)
+                    ys.append(y)
+                y = ys[0] if len(ys) == 1 else np.concatenate(ys)
+                emit(safety(y) if safety is not None else y)
 
             for x in src.blocks(blocksize):
                 k = next(key_blocks) if key_blocks is not None else None

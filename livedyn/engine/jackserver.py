@@ -22,6 +22,17 @@ class JackError(RuntimeError):
     """The server could not be started or died; one line for the user."""
 
 
+def _die_with_parent():
+    """In the child: the kernel sends SIGTERM when the thread that forked it exits (so even a
+    kill -9 of livedyn stops the server). Start servers from the main thread."""
+    try:
+        import ctypes
+
+        ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG
+    except (OSError, AttributeError):
+        pass
+
+
 def _stop_all():
     for srv in list(_LIVE):
         srv.stop()
@@ -99,7 +110,7 @@ class JackServer:
         env.update(self.client_env())
         self.proc = subprocess.Popen(self._cmd(realtime), stdout=self._log,
                                      stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, env=env,
-                                     start_new_session=True)
+                                     start_new_session=True, preexec_fn=_die_with_parent)
 
     def _wait_ready(self, timeout):
         env = dict(os.environ)
@@ -148,9 +159,31 @@ class JackServer:
         return r.stdout.decode(errors="replace").split()
 
     def kill(self):
-        """Kill the server at once (tests use this to simulate a dying server)."""
+        """Kill the server at once (tests use this to simulate a dying server).
+
+        A server killed this way keeps its entry in JACK's small table of servers until a
+        server of the same name starts again: call :meth:`reclaim` afterwards.
+        """
         if self.alive():
             os.killpg(self.proc.pid, signal.SIGKILL)
+            self.proc.wait(timeout=5)
+
+    def reclaim(self):
+        """After a kill: free the dead server's table entry and /dev/shm files."""
+        self.stop()
+        try:
+            self.start(timeout=5.0)
+        except JackError:
+            pass
+        self.stop()
+        import glob
+
+        for pat in (f"/dev/shm/jack_{self.name}_*", f"/dev/shm/jack_sem.*_{self.name}_*"):
+            for f in glob.glob(pat):
+                try:
+                    os.unlink(f)
+                except OSError:
+                    pass
 
     def stop(self, timeout=3.0):
         proc, self.proc = self.proc, None

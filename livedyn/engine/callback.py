@@ -1,0 +1,481 @@
+"""The native audio callback and what it touches.
+
+The callback is a numba ``@cfunc`` with PortAudio's stream-callback signature. It never takes the
+interpreter lock, allocates nothing and makes no system call but a clock read: every array it
+uses is preallocated by :class:`livedyn.engine.engine.Engine` and reached through one int64
+*user-data block* ``ud`` of addresses and sizes (``U_*`` below). Parameters arrive through a
+sequence lock; meters, statistics and a tap of the signals leave through arrays and
+single-producer single-consumer rings whose indices are published with release stores and read
+with acquire loads (LLVM atomics, see :mod:`livedyn.engine.intrinsics`).
+
+Per block: timing and flags; parameter handoff (echoing the sequence number used); main and key
+input from the device channels or from file rings; the processor kernel, called through an
+address table so that the kernel can change at a block boundary without recompiling the
+callback; monitor selection (processed, key, delta); the always-on last stage (non-finite mute,
+fade, mute, ceiling); output channel map; peak meters; the tap ring for the recorder and meters.
+"""
+import numba as nb
+import numpy as np
+from numba import carray, types
+
+from ..dsp.dynamics import dynamics_block as _DYN
+from ..dsp.layout import NTRACE, S_GR_MAX, T_KEY
+from ..dsp.limiter import limiter_block as _LIM
+from .intrinsics import (
+    call_job, fence_acquire, fence_release, int_to_voidptr, load_acquire, load_relaxed,
+    monotonic_ns, store_relaxed, store_release, voidptr_to_int,
+)
+
+JIT = dict(cache=True, nogil=True, error_model="numpy")
+
+# ---- job block: one kernel call (int64) -----------------------------------------------------
+J_X, J_K, J_Y, J_FRAMES, J_CH, J_KCH = 0, 1, 2, 3, 4, 5
+J_P, J_PLEN = 6, 7
+J_ST, J_STR, J_STC = 8, 9, 10
+J_RING, J_RINGR, J_RINGC = 11, 12, 13
+J_TR, J_TRN, J_TRC = 14, 15, 16  # trace buffer; J_TRN = frames to trace (0: none)
+J_CALLS = 17
+JOB_SIZE = 24
+
+# ---- user-data block (int64) ----------------------------------------------------------------
+U_STATS, U_STATS_LEN = 0, 1
+U_NIN, U_NOUT = 2, 3  # device channels
+U_CH, U_KCH = 4, 5  # processor main and key channels
+U_X, U_K, U_Y, U_MAXF = 6, 7, 8, 9  # scratch float32 (maxf, ch) / (maxf, kch) / (maxf, ch)
+U_MAIN_MAP, U_KEY_MAP, U_OUT_MAP = 10, 11, 12  # int64 arrays: device channel per channel
+U_MAIN_RING, U_KEY_RING, U_TAP_RING = 13, 14, 15  # ring headers (0: not used)
+U_SEQ, U_PPEND, U_PTMP, U_LAST_SEQ = 16, 17, 18, 19
+U_KSLOT, U_KTABLE, U_NKSLOT = 20, 21, 22  # kernel address table (fn, job) per slot
+U_MONITOR, U_BYPASS, U_MUTE = 23, 24, 25
+U_SAFE = 26  # float64 safety state
+U_DRY, U_DRY_LEN, U_DRY_POS, U_LATENCY = 27, 28, 29, 30  # float32 (len, ch) dry delay line
+U_METER, U_METER_LEN = 31, 32  # float64 meters
+U_CANARY_EVERY, U_CANARY_NS = 33, 34  # test switch: overrun on purpose every Nth block
+U_ELRING, U_RINGLEN = 35, 36  # int64 (ringlen, 3): elapsed ns, interval ns, flags per block
+U_SEQLOG, U_SEQLOG_LEN = 37, 38  # int64 (len, 2): (parameter sequence, frame) when applied
+U_STOPPING = 39
+U_JOB = 40  # the kernel job block of slot 0 lives at ud[U_JOB:U_JOB + JOB_SIZE]
+UD_SIZE = U_JOB + JOB_SIZE
+
+MONITOR_OUT, MONITOR_KEY, MONITOR_DELTA = 0, 1, 2
+
+# ---- statistics (int64) ---------------------------------------------------------------------
+S_BLOCKS, S_FRAMES, S_T_FIRST, S_T_LAST = 0, 1, 2, 3
+S_EL_LAST, S_EL_MAX = 4, 5
+S_LATE, S_FLAGGED, S_FLAGS_OR = 6, 7, 8
+S_PARAM_SEQ, S_PARAM_FRAME, S_PARAM_TORN = 9, 10, 11
+S_UNDER_MAIN, S_UNDER_KEY, S_TAP_DROPPED = 12, 13, 14
+S_NONFINITE_BLOCKS, S_TOO_BIG, S_PERIOD_NS = 15, 16, 17
+S_CANARY, S_NULL_IN, S_LAST_OVERRUN = 18, 19, 20
+S_KSLOT_USED = 21
+STATS_SIZE = 32
+
+# ---- safety state (float64) -----------------------------------------------------------------
+F_GAIN, F_TARGET, F_FADE_STEP, F_MUTE_STEP, F_CEIL = 0, 1, 2, 3, 4
+SAFE_SIZE = 8
+
+# ---- meters (float64), written every block --------------------------------------------------
+# [0:8] input peak per main channel, [8:16] output peak per channel, [16:24] key peak,
+# [24] gain reduction dB (largest in block)
+M_IN, M_OUT, M_KEY, M_GR = 0, 8, 16, 24
+METER_SIZE = 32
+
+# ---- SPSC ring header (int64) ---------------------------------------------------------------
+H_BUF, H_CAP, H_WIDTH, H_HEAD, H_TAIL, H_COUNT = 0, 1, 2, 3, 4, 5
+RING_HDR = 8
+
+
+@nb.njit(**JIT)
+def ring_read(hdr, dst, n, col0, width):
+    """Consumer: move n frames into dst[:, col0:col0+width]; missing frames become 0.
+
+    Returns the number of frames that were missing (an underrun)."""
+    buf = carray(int_to_voidptr(hdr[H_BUF]), (hdr[H_CAP], hdr[H_WIDTH]), np.float32)
+    cap = hdr[H_CAP]
+    head = load_acquire(hdr, H_HEAD)
+    tail = hdr[H_TAIL]
+    avail = head - tail
+    take = n if avail >= n else avail
+    for i in range(take):
+        j = (tail + i) % cap
+        for c in range(width):
+            dst[i, col0 + c] = buf[j, c]
+    for i in range(take, n):
+        for c in range(width):
+            dst[i, col0 + c] = 0.0
+    store_release(hdr, H_TAIL, tail + take)
+    return n - take
+
+
+@nb.njit(**JIT)
+def ring_write(hdr, src, n):
+    """Producer: append up to n frames of src (n, width); returns the frames written."""
+    buf = carray(int_to_voidptr(hdr[H_BUF]), (hdr[H_CAP], hdr[H_WIDTH]), np.float32)
+    cap = hdr[H_CAP]
+    width = hdr[H_WIDTH]
+    head = hdr[H_HEAD]
+    tail = load_acquire(hdr, H_TAIL)
+    free = cap - (head - tail)
+    put = n if free >= n else free
+    for i in range(put):
+        j = (head + i) % cap
+        for c in range(width):
+            buf[j, c] = src[i, c]
+    store_release(hdr, H_HEAD, head + put)
+    return put
+
+
+@nb.njit(**JIT)
+def ring_take(hdr, dst):
+    """Consumer on the control side: move everything available (up to len(dst)) into dst."""
+    buf = carray(int_to_voidptr(hdr[H_BUF]), (hdr[H_CAP], hdr[H_WIDTH]), np.float32)
+    cap = hdr[H_CAP]
+    head = load_acquire(hdr, H_HEAD)
+    tail = hdr[H_TAIL]
+    n = head - tail
+    if n > dst.shape[0]:
+        n = dst.shape[0]
+    for i in range(n):
+        j = (tail + i) % cap
+        for c in range(hdr[H_WIDTH]):
+            dst[i, c] = buf[j, c]
+    store_release(hdr, H_TAIL, tail + n)
+    return n
+
+
+@nb.njit(**JIT)
+def ring_fill(hdr):
+    """Frames waiting in the ring."""
+    return load_acquire(hdr, H_HEAD) - load_acquire(hdr, H_TAIL)
+
+
+# ---- parameter handoff (sequence lock) ------------------------------------------------------
+
+@nb.njit(**JIT)
+def publish_params(ud, values):
+    """Writer (control side): publish a complete parameter array; the callback takes it at its
+    next block. Odd sequence numbers mean 'being written'."""
+    s = ud[U_SEQ]
+    store_relaxed(ud, U_SEQ, s + 1)
+    fence_release()
+    n = values.shape[0]
+    pend = carray(int_to_voidptr(ud[U_PPEND]), (n,), np.float64)
+    for i in range(n):
+        pend[i] = values[i]
+    store_release(ud, U_SEQ, s + 2)
+    return s + 2
+
+
+@nb.njit(**JIT)
+def take_params(ud, stats, frame0):
+    s1 = load_acquire(ud, U_SEQ)
+    if s1 == ud[U_LAST_SEQ] or (s1 & 1) == 1:
+        return
+    n = ud[U_JOB + J_PLEN]
+    pend = carray(int_to_voidptr(ud[U_PPEND]), (n,), np.float64)
+    tmp = carray(int_to_voidptr(ud[U_PTMP]), (n,), np.float64)
+    for i in range(n):
+        tmp[i] = pend[i]
+    fence_acquire()
+    if load_relaxed(ud, U_SEQ) != s1:
+        stats[S_PARAM_TORN] += 1
+        return
+    p = carray(int_to_voidptr(ud[U_JOB + J_P]), (n,), np.float64)
+    for i in range(n):
+        p[i] = tmp[i]
+    ud[U_LAST_SEQ] = s1
+    ll = ud[U_SEQLOG_LEN]
+    if ll > 0:
+        log = carray(int_to_voidptr(ud[U_SEQLOG]), (ll, 2), np.int64)
+        k = (s1 // 2) % ll
+        log[k, 0] = s1
+        log[k, 1] = frame0
+    store_release(stats, S_PARAM_FRAME, frame0)
+    store_release(stats, S_PARAM_SEQ, s1)
+
+
+# ---- kernels callable through the address table: void fn(void *job) -------------------------
+
+@nb.njit(**JIT)
+def _job_arrays(job):
+    n = job[J_FRAMES]
+    x = carray(int_to_voidptr(job[J_X]), (n, job[J_CH]), np.float32)
+    k = carray(int_to_voidptr(job[J_K]), (n, job[J_KCH]), np.float32)
+    y = carray(int_to_voidptr(job[J_Y]), (n, job[J_CH]), np.float32)
+    p = carray(int_to_voidptr(job[J_P]), (job[J_PLEN],), np.float64)
+    st = carray(int_to_voidptr(job[J_ST]), (job[J_STR], job[J_STC]), np.float64)
+    ring = carray(int_to_voidptr(job[J_RING]), (job[J_RINGR], job[J_RINGC]), np.float64)
+    tr = carray(int_to_voidptr(job[J_TR]), (NTRACE, job[J_TRN], job[J_TRC]), np.float64)
+    return x, k, y, p, st, ring, tr
+
+
+JOB_SIG = types.void(types.voidptr)
+
+
+@nb.cfunc(JOB_SIG, nopython=True, error_model="numpy", cache=True)
+def job_dynamics(jp):
+    job = carray(jp, (JOB_SIZE,), np.int64)
+    x, k, y, p, st, ring, tr = _job_arrays(job)
+    _DYN(x, k, y, p, st, ring, tr)
+    job[J_CALLS] += 1
+
+
+@nb.cfunc(JOB_SIG, nopython=True, error_model="numpy", cache=True)
+def job_limiter(jp):
+    job = carray(jp, (JOB_SIZE,), np.int64)
+    x, k, y, p, st, ring, tr = _job_arrays(job)
+    _LIM(x, k, y, p, st, ring, tr)
+    job[J_CALLS] += 1
+
+
+# ---- the last stage -------------------------------------------------------------------------
+
+@nb.njit(**JIT)
+def safety_stage(y, n, ch, safe, mute, stats):
+    """Non-finite samples mute the whole block (counted); then fade/mute gain; then ceiling."""
+    bad = False
+    for i in range(n):
+        for c in range(ch):
+            v = y[i, c]
+            if not (v - v == 0.0):  # NaN or +-inf
+                bad = True
+    if bad:
+        stats[S_NONFINITE_BLOCKS] += 1
+        for i in range(n):
+            for c in range(ch):
+                y[i, c] = 0.0
+    g = safe[F_GAIN]
+    target = 0.0 if mute != 0 else safe[F_TARGET]
+    step = safe[F_MUTE_STEP] if mute != 0 else safe[F_FADE_STEP]
+    ceil = safe[F_CEIL]
+    for i in range(n):
+        if g < target:
+            g += step
+            if g > target:
+                g = target
+        elif g > target:
+            g -= step
+            if g < target:
+                g = target
+        for c in range(ch):
+            v = y[i, c] * g
+            if v > ceil:
+                v = ceil
+            elif v < -ceil:
+                v = -ceil
+            y[i, c] = v
+    safe[F_GAIN] = g
+
+
+@nb.njit(**JIT)
+def _spin_ns(ns):
+    t = monotonic_ns()
+    while monotonic_ns() - t < ns:
+        pass
+
+
+@nb.njit(**JIT)
+def block_body(inp, has_in, outp, n, ud, stats, t0, status):
+    nin = ud[U_NIN]
+    nout = ud[U_NOUT]
+    ch = ud[U_CH]
+    kch = ud[U_KCH]
+    frame0 = stats[S_FRAMES]
+    period = stats[S_PERIOD_NS]
+    blocks = stats[S_BLOCKS]
+    # ---- timing: a block is late if it started more than 1.5 periods after the previous one
+    # and the previous one did not overrun (an overrun is counted by the block itself) ---------
+    interval = 0
+    if blocks == 0:
+        stats[S_T_FIRST] = t0
+    else:
+        interval = t0 - stats[S_T_LAST]
+        if period > 0 and 2 * interval > 3 * period and stats[S_LAST_OVERRUN] == 0:
+            stats[S_LATE] += 1
+    stats[S_T_LAST] = t0
+    if status != 0:
+        stats[S_FLAGGED] += 1
+        stats[S_FLAGS_OR] |= status
+
+    take_params(ud, stats, frame0)
+
+    x = carray(int_to_voidptr(ud[U_X]), (n, ch), np.float32)
+    k = carray(int_to_voidptr(ud[U_K]), (n, kch if kch > 0 else 1), np.float32)
+    y = carray(int_to_voidptr(ud[U_Y]), (n, ch), np.float32)
+    # ---- main input ----------------------------------------------------------------------------
+    if ud[U_MAIN_RING] != 0:
+        hdr = carray(int_to_voidptr(ud[U_MAIN_RING]), (RING_HDR,), np.int64)
+        miss = ring_read(hdr, x, n, 0, ch)
+        if miss > 0:
+            stats[S_UNDER_MAIN] += 1
+    else:
+        mmap = carray(int_to_voidptr(ud[U_MAIN_MAP]), (ch,), np.int64)
+        for i in range(n):
+            for c in range(ch):
+                j = mmap[c]
+                x[i, c] = inp[i, j] if (has_in and j >= 0) else 0.0
+    # ---- key input -----------------------------------------------------------------------------
+    if kch > 0:
+        if ud[U_KEY_RING] != 0:
+            hdr = carray(int_to_voidptr(ud[U_KEY_RING]), (RING_HDR,), np.int64)
+            miss = ring_read(hdr, k, n, 0, kch)
+            if miss > 0:
+                stats[S_UNDER_KEY] += 1
+        else:
+            kmap = carray(int_to_voidptr(ud[U_KEY_MAP]), (kch,), np.int64)
+            for i in range(n):
+                for c in range(kch):
+                    j = kmap[c]
+                    k[i, c] = inp[i, j] if (has_in and j >= 0) else 0.0
+    if not has_in:
+        stats[S_NULL_IN] += 1
+
+    # ---- the processor kernel, through the address table -------------------------------------
+    monitor = load_relaxed(ud, U_MONITOR)
+    slot = load_acquire(ud, U_KSLOT)
+    table = carray(int_to_voidptr(ud[U_KTABLE]), (ud[U_NKSLOT], 2), np.int64)
+    jaddr = table[slot, 1]
+    job = carray(int_to_voidptr(jaddr), (JOB_SIZE,), np.int64)
+    job[J_FRAMES] = n
+    job[J_TRN] = n if monitor == MONITOR_KEY else 0
+    call_job(table[slot, 0], int_to_voidptr(jaddr))
+    stats[S_KSLOT_USED] = slot
+
+    # ---- dry delay line (for bypass and delta, aligned with the processor's latency) --------
+    dl = ud[U_DRY_LEN]
+    dry = carray(int_to_voidptr(ud[U_DRY]), (dl, ch), np.float32)
+    pos = ud[U_DRY_POS]
+    lat = ud[U_LATENCY]
+    bypass = load_relaxed(ud, U_BYPASS)
+    for i in range(n):
+        for c in range(ch):
+            dry[pos, c] = x[i, c]
+        r = pos - lat
+        if r < 0:
+            r += dl
+        if bypass != 0:
+            for c in range(ch):
+                y[i, c] = dry[r, c]
+        elif monitor == MONITOR_DELTA:
+            for c in range(ch):
+                y[i, c] = dry[r, c] - y[i, c]
+        pos += 1
+        if pos >= dl:
+            pos = 0
+    ud[U_DRY_POS] = pos
+    if monitor == MONITOR_KEY and bypass == 0:
+        tr = carray(int_to_voidptr(job[J_TR]), (NTRACE, n, job[J_TRC]), np.float64)
+        nk = kch if kch > 0 else ch
+        for i in range(n):
+            for c in range(ch):
+                y[i, c] = tr[T_KEY, i, c % nk]
+
+    # ---- the last stage ------------------------------------------------------------------------
+    safe = carray(int_to_voidptr(ud[U_SAFE]), (SAFE_SIZE,), np.float64)
+    safety_stage(y, n, ch, safe, load_relaxed(ud, U_MUTE) | load_relaxed(ud, U_STOPPING), stats)
+
+    # ---- output channel map ----------------------------------------------------------------
+    out = carray(outp, (n, nout), np.float32)
+    omap = carray(int_to_voidptr(ud[U_OUT_MAP]), (nout,), np.int64)
+    for i in range(n):
+        for c in range(nout):
+            j = omap[c]
+            out[i, c] = y[i, j] if j >= 0 else 0.0
+
+    # ---- meters --------------------------------------------------------------------------------
+    m = carray(int_to_voidptr(ud[U_METER]), (METER_SIZE,), np.float64)
+    for c in range(ch):
+        a = 0.0
+        b = 0.0
+        for i in range(n):
+            v = abs(x[i, c])
+            if v > a:
+                a = v
+            v = abs(y[i, c])
+            if v > b:
+                b = v
+        m[M_IN + c] = a
+        m[M_OUT + c] = b
+    for c in range(kch):
+        a = 0.0
+        for i in range(n):
+            v = abs(k[i, c])
+            if v > a:
+                a = v
+        m[M_KEY + c] = a
+    st = carray(int_to_voidptr(job[J_ST]), (job[J_STR], job[J_STC]), np.float64)
+    m[M_GR] = st[S_GR_MAX, 0]
+
+    # ---- tap ring: main in, key in, output (for the recorder and the loudness meters) ------
+    if ud[U_TAP_RING] != 0:
+        hdr = carray(int_to_voidptr(ud[U_TAP_RING]), (RING_HDR,), np.int64)
+        buf = carray(int_to_voidptr(hdr[H_BUF]), (hdr[H_CAP], hdr[H_WIDTH]), np.float32)
+        cap = hdr[H_CAP]
+        head = hdr[H_HEAD]
+        tail = load_acquire(hdr, H_TAIL)
+        if cap - (head - tail) >= n:
+            for i in range(n):
+                jj = (head + i) % cap
+                for c in range(ch):
+                    buf[jj, c] = x[i, c]
+                for c in range(kch):
+                    buf[jj, ch + c] = k[i, c]
+                for c in range(ch):
+                    buf[jj, ch + kch + c] = y[i, c]
+            store_release(hdr, H_HEAD, head + n)
+        else:
+            stats[S_TAP_DROPPED] += 1
+
+    # ---- canary: a test-only switch that overruns the budget on purpose ----------------------
+    every = ud[U_CANARY_EVERY]
+    if every > 0 and (blocks + 1) % every == 0:
+        stats[S_CANARY] += 1
+        _spin_ns(ud[U_CANARY_NS])
+
+    stats[S_BLOCKS] = blocks + 1
+    store_release(stats, S_FRAMES, frame0 + n)
+    return interval
+
+
+# int cb(const void* input, void* output, unsigned long frameCount,
+#        const PaStreamCallbackTimeInfo* timeInfo, PaStreamCallbackFlags statusFlags,
+#        void* userData)      -- unsigned long is 64-bit on Linux x86-64 (LP64)
+CB_SIG = types.intc(types.voidptr, types.voidptr, types.uint64, types.voidptr, types.uint64,
+                    types.voidptr)
+
+
+@nb.cfunc(CB_SIG, nopython=True, error_model="numpy", cache=True)
+def native_callback(inp_ptr, out_ptr, frames, time_info, status, user):
+    t0 = monotonic_ns()
+    ud = carray(user, (UD_SIZE,), np.int64)
+    stats = carray(int_to_voidptr(ud[U_STATS]), (ud[U_STATS_LEN],), np.int64)
+    n = np.int64(frames)
+    nout = ud[U_NOUT]
+    if n > ud[U_MAXF]:
+        stats[S_TOO_BIG] += 1
+        o = carray(out_ptr, (n, nout), np.float32)
+        for i in range(n):
+            for c in range(nout):
+                o[i, c] = 0.0
+        return 0
+    has_in = voidptr_to_int(inp_ptr) != 0
+    nin = ud[U_NIN]
+    ip = inp_ptr if has_in else int_to_voidptr(ud[U_X])
+    inp = carray(ip, (n, nin if nin > 0 else 1), np.float32)
+    interval = block_body(inp, has_in, out_ptr, n, ud, stats, t0, np.int64(status))
+    el = monotonic_ns() - t0
+    stats[S_EL_LAST] = el
+    if el > stats[S_EL_MAX]:
+        stats[S_EL_MAX] = el
+    period = stats[S_PERIOD_NS]
+    over = 1 if (period > 0 and el > period) else 0
+    if over:
+        stats[S_LATE] += 1
+    stats[S_LAST_OVERRUN] = over
+    rl = ud[U_RINGLEN]
+    rng = carray(int_to_voidptr(ud[U_ELRING]), (rl, 3), np.int64)
+    b = (stats[S_BLOCKS] - 1) % rl
+    rng[b, 0] = el
+    rng[b, 1] = interval
+    rng[b, 2] = np.int64(status)
+    return 0  # paContinue

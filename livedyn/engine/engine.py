@@ -1,0 +1,591 @@
+"""Engine: a Processor running live inside a PortAudio stream, and its control surface.
+
+``Engine(...)``, ``start()``, ``set(name, value)``, ``snapshot()``, ``load_preset()``,
+``bypass()``, ``mute()``, ``monitor()``, ``stop()`` may be called from any thread: parameter
+changes go through a sequence lock that the native callback reads once per block, and every
+other control is one aligned int64 store.
+"""
+from __future__ import annotations
+
+import math
+import threading
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ..dsp.layout import NTRACE
+from ..meters import MeterSet
+from ..params import NPARAM, ParamError
+from ..processor import Processor
+from . import callback as cb
+from .stream import DeviceError, NativeStream, find_device
+
+RING_SECONDS = 1.0
+TAP_SECONDS = 2.0
+ELRING = 1 << 16
+SEQLOG = 4096
+
+
+class EngineError(RuntimeError):
+    """The stream failed while running (server died, device vanished); one line."""
+
+
+class ArraySource:
+    """Frames of an array played as if they were an input; optionally looped."""
+
+    def __init__(self, data, loop=False):
+        self.data = np.ascontiguousarray(np.asarray(data, np.float32).reshape(len(data), -1))
+        self.loop = loop
+        self.pos = 0
+        self.channels = self.data.shape[1]
+        self.finished = False
+
+    def read(self, n):
+        if self.pos >= len(self.data):
+            if not self.loop or len(self.data) == 0:
+                self.finished = True
+                return None
+            self.pos = 0
+        blk = self.data[self.pos:self.pos + n]
+        self.pos += len(blk)
+        return blk
+
+    def close(self):
+        pass
+
+
+class FileSource:
+    """A WAV file played as if it were an input, streamed from disk."""
+
+    def __init__(self, path, loop=False, samplerate=None):
+        from ..wavio import WavReader
+
+        self.path = path
+        self.reader = WavReader(path)
+        if samplerate is not None and self.reader.samplerate != samplerate:
+            sr = self.reader.samplerate
+            self.reader.close()
+            raise DeviceError(f"{path}: {sr} Hz, expected {samplerate:g} Hz like the stream")
+        self.channels = self.reader.channels
+        self.loop = loop
+        self.finished = False
+
+    def read(self, n):
+        blk = self.reader.read(n)
+        if len(blk) == 0:
+            if not self.loop:
+                self.finished = True
+                return None
+            self.reader.seek(0)
+            blk = self.reader.read(n)
+        return blk
+
+    def close(self):
+        self.reader.close()
+
+
+def _ring(frames, width):
+    hdr = np.zeros(cb.RING_HDR, np.int64)
+    buf = np.zeros((max(frames, 1), max(width, 1)), np.float32)
+    hdr[cb.H_BUF] = buf.ctypes.data
+    hdr[cb.H_CAP] = buf.shape[0]
+    hdr[cb.H_WIDTH] = buf.shape[1]
+    return hdr, buf
+
+
+@dataclass
+class Routing:
+    """Which device channels feed the processor and which carry its output (0-based)."""
+
+    main: list
+    key: list
+    outputs: list  # processed channel per device output, or -1 for silence
+
+
+class Engine:
+    """Run ``processor`` live.
+
+    Parameters
+    ----------
+    processor : Processor
+        Configured processor; its arrays become the callback's (do not call its ``process``
+        while the engine runs).
+    blocksize : int
+        Frames per callback (the JACK period when headless).
+    device, input_device, output_device : str or int, optional
+        PortAudio device(s) by index or name.
+    main_inputs, key_inputs, outputs : list of int, optional
+        1-based device channels (default: the first channels in order).
+    main_source, key_source : ArraySource or FileSource, optional
+        Play these as if they were the instrument / the key; otherwise device inputs.
+    record_dir : path, optional
+        Write main.wav, key.wav, out.wav and automation.txt there.
+    ceiling_db : float
+        Ceiling of the always-on last stage, dBFS.
+    """
+
+    def __init__(self, processor: Processor, blocksize=64, device=None, input_device=None,
+                 output_device=None, main_inputs=None, key_inputs=None, outputs=None,
+                 main_source=None, key_source=None, record_dir=None, ceiling_db=-1.0,
+                 fade_in_ms=500.0, fade_out_ms=50.0, mute_ms=5.0, max_frames=8192,
+                 monitor="out", meters=True):
+        self.proc = processor
+        self.fs = processor.samplerate
+        self.blocksize = int(blocksize)
+        self.ch = processor.channels
+        self.kch = processor.key_channels
+        self.main_source = main_source
+        self.key_source = key_source
+        self.record_dir = Path(record_dir) if record_dir else None
+        self._lock = threading.RLock()
+        self._closed = False
+        self.error = None
+        if main_source is not None and main_source.channels != self.ch:
+            raise DeviceError(f"main source has {main_source.channels} channels, expected "
+                              f"{self.ch}")
+        if key_source is not None and key_source.channels != self.kch:
+            raise DeviceError(f"key source has {key_source.channels} channels, expected "
+                              f"{self.kch}")
+
+        # ---- devices and routing (checked before anything opens) ---------------------------
+        in_dev = find_device(input_device if input_device is not None else device, "input")
+        out_dev = find_device(output_device if output_device is not None else device, "output")
+        from .stream import list_devices
+
+        devs = list_devices()
+        n_in_dev, n_out_dev = devs[in_dev]["inputs"], devs[out_dev]["outputs"]
+        main = [c - 1 for c in main_inputs] if main_inputs else list(range(self.ch))
+        key = [c - 1 for c in key_inputs] if key_inputs else \
+            list(range(self.ch, self.ch + self.kch))
+        outs = [c - 1 for c in outputs] if outputs else list(range(min(self.ch, n_out_dev)))
+        if main_source is None and len(main) != self.ch:
+            raise DeviceError(f"--main-inputs gives {len(main)} channels, the processor has "
+                              f"{self.ch}")
+        if key_source is None and self.kch and len(key) != self.kch:
+            raise DeviceError(f"--key-inputs gives {len(key)} channels, the processor has "
+                              f"{self.kch} key channels")
+        for what, chans, limit, src in (("main input", main, n_in_dev, main_source),
+                                         ("key input", key, n_in_dev, key_source)):
+            if src is not None or (what == "key input" and not self.kch):
+                continue
+            for c in chans:
+                if not 0 <= c < limit:
+                    raise DeviceError(f"{what} channel {c + 1}: {devs[in_dev]['name']!r} has "
+                                      f"{limit} input channels")
+        for c in outs:
+            if not 0 <= c < n_out_dev:
+                raise DeviceError(f"output channel {c + 1}: {devs[out_dev]['name']!r} has "
+                                  f"{n_out_dev} output channels")
+        used_in = [c for c in (main if main_source is None else []) +
+                   (key if (key_source is None and self.kch) else [])]
+        self.n_in = (max(used_in) + 1) if used_in else min(1, n_in_dev)
+        self.n_out = max(outs) + 1 if outs else 1
+        omap = np.full(self.n_out, -1, np.int64)
+        for i, c in enumerate(outs):
+            omap[c] = i % self.ch
+        self.routing = Routing(main, key, list(omap))
+        self._devices = (in_dev, out_dev)
+
+        # ---- every array the callback touches --------------------------------------------------
+        maxf = int(max_frames)
+        self.maxf = maxf
+        self.ud = np.zeros(cb.UD_SIZE, np.int64)
+        self.stats = np.zeros(cb.STATS_SIZE, np.int64)
+        self.x = np.zeros((maxf, self.ch), np.float32)
+        self.k = np.zeros((maxf, max(self.kch, 1)), np.float32)
+        self.y = np.zeros((maxf, self.ch), np.float32)
+        self.main_map = np.array(main if main_source is None else [-1] * self.ch, np.int64)
+        self.key_map = np.array((key if key_source is None else [-1] * self.kch) or [-1],
+                                np.int64)
+        self.out_map = omap
+        self.pend = processor.p.copy()
+        self.ptmp = processor.p.copy()
+        self.safe = np.zeros(cb.SAFE_SIZE, np.float64)
+        self.safe[cb.F_GAIN] = 0.0
+        self.safe[cb.F_TARGET] = 1.0
+        self.safe[cb.F_FADE_STEP] = 1.0 / max(1.0, fade_in_ms * self.fs / 1000.0)
+        self.safe[cb.F_MUTE_STEP] = 1.0 / max(1.0, mute_ms * self.fs / 1000.0)
+        self.safe[cb.F_CEIL] = 10 ** (ceiling_db / 20.0)
+        self._fade_out_step = 1.0 / max(1.0, fade_out_ms * self.fs / 1000.0)
+        dry_len = processor.ring.shape[0] + maxf
+        self.dry = np.zeros((dry_len, self.ch), np.float32)
+        self.meter = np.zeros(cb.METER_SIZE, np.float64)
+        self.elring = np.zeros((ELRING, 3), np.int64)
+        self.seqlog = np.full((SEQLOG, 2), -1, np.int64)
+        self.trace = np.zeros(NTRACE * maxf * processor.st.shape[1], np.float64)
+        self.table = np.zeros((4, 2), np.int64)
+        self.job = self.ud[cb.U_JOB:cb.U_JOB + cb.JOB_SIZE]
+        rf = int(RING_SECONDS * self.fs)
+        self.main_ring = _ring(rf, self.ch) if main_source is not None else None
+        self.key_ring = _ring(rf, self.kch) if key_source is not None else None
+        self.tap_width = 2 * self.ch + self.kch
+        self.tap_ring = _ring(int(TAP_SECONDS * self.fs), self.tap_width)
+
+        from ..dsp import warm  # noqa: F401  (kernels are compiled by Processor already)
+
+        kernel = cb.job_limiter if processor.algorithm.kind == "limiter" else cb.job_dynamics
+        self._kernel_cfunc = kernel
+        ud = self.ud
+        ud[cb.U_STATS], ud[cb.U_STATS_LEN] = self.stats.ctypes.data, cb.STATS_SIZE
+        ud[cb.U_NIN], ud[cb.U_NOUT] = self.n_in, self.n_out
+        ud[cb.U_CH], ud[cb.U_KCH] = self.ch, self.kch
+        ud[cb.U_X], ud[cb.U_K], ud[cb.U_Y] = (self.x.ctypes.data, self.k.ctypes.data,
+                                              self.y.ctypes.data)
+        ud[cb.U_MAXF] = maxf
+        ud[cb.U_MAIN_MAP] = self.main_map.ctypes.data
+        ud[cb.U_KEY_MAP] = self.key_map.ctypes.data
+        ud[cb.U_OUT_MAP] = self.out_map.ctypes.data
+        ud[cb.U_MAIN_RING] = self.main_ring[0].ctypes.data if self.main_ring else 0
+        ud[cb.U_KEY_RING] = self.key_ring[0].ctypes.data if self.key_ring else 0
+        ud[cb.U_TAP_RING] = self.tap_ring[0].ctypes.data
+        ud[cb.U_PPEND], ud[cb.U_PTMP] = self.pend.ctypes.data, self.ptmp.ctypes.data
+        ud[cb.U_KTABLE], ud[cb.U_NKSLOT] = self.table.ctypes.data, self.table.shape[0]
+        ud[cb.U_KSLOT] = 0
+        ud[cb.U_MONITOR] = {"out": 0, "key": 1, "delta": 2}[monitor]
+        ud[cb.U_SAFE] = self.safe.ctypes.data
+        ud[cb.U_DRY], ud[cb.U_DRY_LEN] = self.dry.ctypes.data, dry_len
+        ud[cb.U_LATENCY] = processor.latency_samples
+        ud[cb.U_METER], ud[cb.U_METER_LEN] = self.meter.ctypes.data, cb.METER_SIZE
+        ud[cb.U_ELRING], ud[cb.U_RINGLEN] = self.elring.ctypes.data, ELRING
+        ud[cb.U_SEQLOG], ud[cb.U_SEQLOG_LEN] = self.seqlog.ctypes.data, SEQLOG
+        job = self.job
+        job[cb.J_X], job[cb.J_K], job[cb.J_Y] = (self.x.ctypes.data,
+                                                 (self.k if self.kch else self.x).ctypes.data,
+                                                 self.y.ctypes.data)
+        job[cb.J_CH], job[cb.J_KCH] = self.ch, self.kch if self.kch else self.ch
+        p, st, ring = processor.p, processor.st, processor.ring
+        job[cb.J_P], job[cb.J_PLEN] = p.ctypes.data, NPARAM
+        job[cb.J_ST], job[cb.J_STR], job[cb.J_STC] = st.ctypes.data, *st.shape
+        job[cb.J_RING], job[cb.J_RINGR], job[cb.J_RINGC] = ring.ctypes.data, *ring.shape
+        job[cb.J_TR], job[cb.J_TRN], job[cb.J_TRC] = self.trace.ctypes.data, 0, st.shape[1]
+        self.table[0, 0] = kernel.address
+        self.table[0, 1] = job.ctypes.data
+        self.stats[cb.S_PERIOD_NS] = int(round(1e9 * self.blocksize / self.fs))
+
+        self.meters_in = MeterSet(self.fs, self.ch) if meters else None
+        self.meters_out = MeterSet(self.fs, self.ch) if meters else None
+        self._snapshot_meters = {}
+        self._changes = []  # (seq, name, value) for the automation recording
+        self._recorded = []  # (frame, name, value)
+        self._threads = []
+        self._stop_evt = threading.Event()
+        self.stream = None
+        self._writers = None
+        self._warm_callback()
+
+    # ---- life cycle ---------------------------------------------------------------------------
+    def _warm_callback(self):
+        """Run the callback once from here, on copies, so that nothing is first done live, and
+        touch every page the callback will use."""
+        import ctypes
+
+        f = ctypes.CFUNCTYPE(ctypes.c_int, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_ulong,
+                             ctypes.c_void_p, ctypes.c_ulong, ctypes.c_void_p)(
+            cb.native_callback.address)
+        keep = [(a, a.copy()) for a in (self.stats, self.proc.st, self.proc.ring, self.proc.p,
+                                        self.safe, self.meter, self.elring, self.dry,
+                                        self.tap_ring[0], self.seqlog)]
+        keep += [(r[0], r[0].copy()) for r in (self.main_ring, self.key_ring) if r]
+        ud_keep = self.ud.copy()
+        inp = np.zeros((self.blocksize, max(self.n_in, 1)), np.float32)
+        out = np.zeros((self.blocksize, self.n_out), np.float32)
+        f(inp.ctypes.data if self.n_in else None, out.ctypes.data, self.blocksize, None, 0,
+          self.ud.ctypes.data)
+        for a, c in keep:
+            a[...] = c
+        self.ud[...] = ud_keep
+        for a in (self.x, self.k, self.y, self.dry, self.trace, self.tap_ring[1], self.elring,
+                  self.seqlog) + tuple(r[1] for r in (self.main_ring, self.key_ring) if r):
+            a.reshape(-1)[::512] = a.reshape(-1)[::512]
+
+    def start(self):
+        """Prefill the input rings, open and start the stream, start the helper threads."""
+        self._record_initial()
+        for src, ring in ((self.main_source, self.main_ring), (self.key_source, self.key_ring)):
+            if src is not None:
+                self._feed(src, ring, until_full=True)
+        if self.record_dir is not None:
+            self._open_writers()
+        self.stream = NativeStream(cb.native_callback.address, self.ud.ctypes.data,
+                                   self._devices[0], self._devices[1], self.n_in, self.n_out,
+                                   self.fs, self.blocksize)
+        self.t_start = time.monotonic()
+        self.stream.start()
+        for target in (self._feeder_loop, self._tap_loop):
+            t = threading.Thread(target=target, daemon=True)
+            t.start()
+            self._threads.append(t)
+        return self
+
+    def _feed(self, src, ring, until_full=False):
+        hdr, buf = ring
+        chunk = max(self.blocksize * 8, 1024)
+        moved = 0
+        while True:
+            free = hdr[cb.H_CAP] - cb.ring_fill(hdr)
+            if free < chunk:
+                return moved
+            blk = src.read(chunk)
+            if blk is None or len(blk) == 0:
+                return moved if moved else -1
+            cb.ring_write(hdr, np.ascontiguousarray(blk, np.float32), len(blk))
+            moved += len(blk)
+            if not until_full and moved >= chunk * 4:
+                return moved
+
+    def _feeder_loop(self):
+        ended = {id(self.main_source): False, id(self.key_source): False}
+        while not self._stop_evt.is_set():
+            for src, ring in ((self.main_source, self.main_ring),
+                              (self.key_source, self.key_ring)):
+                if src is not None and not ended[id(src)]:
+                    if self._feed(src, ring) == -1:
+                        ended[id(src)] = True
+            self._stop_evt.wait(0.01)
+
+    @property
+    def source_finished(self):
+        """True once a file/array main source has played to its end and its ring is empty."""
+        if self.main_source is None:
+            return False
+        return self.main_source.finished and cb.ring_fill(self.main_ring[0]) == 0
+
+    def _tap_loop(self):
+        hdr, _ = self.tap_ring
+        chunk = np.zeros((int(0.1 * self.fs) + self.maxf, self.tap_width), np.float32)
+        while not self._stop_evt.is_set():
+            self._drain_tap(hdr, chunk)
+            self._resolve_changes()
+            self._stop_evt.wait(0.02)
+        self._drain_tap(hdr, chunk)
+        self._resolve_changes()
+
+    def _drain_tap(self, hdr, chunk):
+        while True:
+            n = cb.ring_take(hdr, chunk)
+            if n == 0:
+                return
+            blk = chunk[:n]
+            xin = np.ascontiguousarray(blk[:, :self.ch])
+            key = np.ascontiguousarray(blk[:, self.ch:self.ch + self.kch])
+            yout = np.ascontiguousarray(blk[:, self.ch + self.kch:])
+            if self.meters_in is not None:
+                self.meters_in.process(xin)
+                self.meters_out.process(yout)
+                self._snapshot_meters = {"in": self.meters_in.snapshot(),
+                                         "out": self.meters_out.snapshot()}
+            if self._writers is not None:
+                self._writers["main"].write(xin)
+                if self.kch:
+                    self._writers["key"].write(key)
+                self._writers["out"].write(yout)
+
+    def _open_writers(self):
+        from ..wavio import WavWriter
+
+        self.record_dir.mkdir(parents=True, exist_ok=True)
+        fs = int(self.fs)
+        self._writers = {"main": WavWriter(self.record_dir / "main.wav", fs, self.ch),
+                         "out": WavWriter(self.record_dir / "out.wav", fs, self.ch)}
+        if self.kch:
+            self._writers["key"] = WavWriter(self.record_dir / "key.wav", fs, self.kch)
+
+    def stop(self, timeout=2.0):
+        """Fade out, stop the stream and the threads, close recordings. Idempotent."""
+        with self._lock:
+            if self._closed:
+                return
+            self._closed = True
+        if self.stream is not None and self.error is None:
+            self.safe[cb.F_FADE_STEP] = self._fade_out_step
+            self.safe[cb.F_TARGET] = 0.0
+            t_end = time.monotonic() + timeout
+            while self.safe[cb.F_GAIN] > 0.0 and time.monotonic() < t_end and self.alive():
+                time.sleep(0.005)
+            time.sleep(2 * self.blocksize / self.fs)
+        self._stop_evt.set()
+        for t in self._threads:
+            t.join(timeout=timeout)
+        if self.stream is not None and self.error is None:
+            self.stream.stop()
+            self.stream.close()
+        for src in (self.main_source, self.key_source):
+            if src is not None:
+                src.close()
+        if self._writers is not None:
+            for w in self._writers.values():
+                w.close()
+            self._writers = None
+            self._write_automation()
+
+    def alive(self):
+        """False when the stream has stopped delivering blocks (a dead server, say)."""
+        return self.error is None
+
+    def watch(self, stall_seconds=0.5):
+        """Call regularly: detects a stalled stream from the frame counter; sets .error."""
+        if self.stream is None or self.error is not None:
+            return self.error is None
+        now = time.monotonic()
+        frames = int(self.stats[cb.S_FRAMES])
+        last = getattr(self, "_watch_last", None)
+        if last is None or frames != last[0]:
+            self._watch_last = (frames, now)
+        elif now - last[1] > stall_seconds and now - self.t_start > 1.0:
+            self.error = (f"the audio stream stopped: no block for {now - last[1]:.1f} s "
+                          "(the server or device went away)")
+            return False
+        return True
+
+    # ---- control surface ----------------------------------------------------------------------
+    def set(self, name, value):
+        """Set a parameter; it reaches the callback at its next block. Returns the sequence."""
+        with self._lock:
+            prm = self.proc.schema[name]
+            v = prm.parse(value)
+            trial = self.pend.copy()
+            trial[prm.slot] = v
+            self.proc._check_combination(trial)
+            if prm.name in ("key_lpf", "key_bpf") and v >= self.fs / 2:
+                raise ParamError(f"{prm.name} = {v:g} Hz: must be below half the sample rate "
+                                 f"({self.fs / 2:g} Hz)")
+            self.pend[prm.slot] = v
+            seq = int(cb.publish_params(self.ud, self.pend))
+            self._changes.append((seq, prm.name, v))
+            if prm.name in ("lookahead", "true_peak"):
+                self.ud[cb.U_LATENCY] = self._latency_of(self.pend)
+            return seq
+
+    def _latency_of(self, p):
+        saved = self.proc.p.copy()
+        try:
+            self.proc.p[:] = p
+            return self.proc.latency_samples
+        finally:
+            self.proc.p[:] = saved
+
+    def get(self, name):
+        return float(self.pend[self.proc.schema[name].slot])
+
+    def wait_applied(self, seq, timeout=1.0):
+        """Wait until the callback echoes a parameter sequence >= seq; returns its frame."""
+        t_end = time.monotonic() + timeout
+        while time.monotonic() < t_end:
+            if self.stats[cb.S_PARAM_SEQ] >= seq:
+                return int(self.stats[cb.S_PARAM_FRAME])
+            time.sleep(0.0005)
+        return None
+
+    def load_preset(self, name_or_path):
+        """Apply a preset of the running algorithm; a broken preset changes nothing."""
+        from .. import presets
+
+        pr = presets.load(name_or_path)
+        if pr.algorithm != self.proc.algorithm.name:
+            raise ParamError(f"{name_or_path}: a {pr.algorithm} preset, but this engine runs "
+                             f"the {self.proc.algorithm.name}")
+        trial = self.pend.copy()
+        for n, v in pr.values.items():
+            trial[self.proc.schema[n].slot] = self.proc.schema[n].check(v)
+        self.proc._check_combination(trial)
+        for n, v in pr.values.items():
+            if self.pend[self.proc.schema[n].slot] != v:
+                self.set(n, v)
+        return pr
+
+    def bypass(self, on=True):
+        self.ud[cb.U_BYPASS] = 1 if on else 0
+
+    def mute(self, on=True):
+        self.ud[cb.U_MUTE] = 1 if on else 0
+
+    def monitor(self, mode):
+        modes = {"out": cb.MONITOR_OUT, "key": cb.MONITOR_KEY, "delta": cb.MONITOR_DELTA}
+        if mode not in modes:
+            raise ParamError(f"monitor {mode!r}: expected one of out, key, delta")
+        self.ud[cb.U_MONITOR] = modes[mode]
+
+    def set_canary(self, every_blocks, spin_ns):
+        """Test-only: make every Nth block overrun by spinning (0 switches it off)."""
+        self.ud[cb.U_CANARY_NS] = int(spin_ns)
+        self.ud[cb.U_CANARY_EVERY] = int(every_blocks)
+
+    # ---- what the callback reports ------------------------------------------------------------
+    def snapshot(self):
+        """Meters and statistics as plain numbers."""
+        s = self.stats
+        blocks = int(s[cb.S_BLOCKS])
+        n = min(blocks, ELRING)
+        period_ns = float(s[cb.S_PERIOD_NS])
+        el = self.elring[:n, 0].astype(np.float64)
+        iv = self.elring[:n, 1].astype(np.float64)
+        iv = iv[iv > 0]
+
+        def pct(a, q):
+            return float(np.percentile(a, q)) / period_ns if len(a) else 0.0
+
+        m = self.meter
+        snap = {
+            "blocks": blocks, "frames": int(s[cb.S_FRAMES]),
+            "late_blocks": int(s[cb.S_LATE]), "flagged_blocks": int(s[cb.S_FLAGGED]),
+            "status_flags": int(s[cb.S_FLAGS_OR]),
+            "callback_load": {"median": pct(el, 50), "p99": pct(el, 99), "p99_9": pct(el, 99.9),
+                              "max": float(el.max()) / period_ns if n else 0.0},
+            "wakeup_interval": {"median": pct(iv, 50), "p99": pct(iv, 99),
+                                "p99_9": pct(iv, 99.9),
+                                "max": float(iv.max()) / period_ns if len(iv) else 0.0},
+            "underruns_main": int(s[cb.S_UNDER_MAIN]), "underruns_key": int(s[cb.S_UNDER_KEY]),
+            "tap_dropped_blocks": int(s[cb.S_TAP_DROPPED]),
+            "nonfinite_blocks": int(s[cb.S_NONFINITE_BLOCKS]),
+            "param_seq": int(s[cb.S_PARAM_SEQ]), "param_frame": int(s[cb.S_PARAM_FRAME]),
+            "peak_in_dbfs": [_db(v) for v in m[cb.M_IN:cb.M_IN + self.ch]],
+            "peak_out_dbfs": [_db(v) for v in m[cb.M_OUT:cb.M_OUT + self.ch]],
+            "peak_key_dbfs": [_db(v) for v in m[cb.M_KEY:cb.M_KEY + self.kch]],
+            "gain_reduction_db": float(m[cb.M_GR]),
+            "lookahead_samples": int(self.ud[cb.U_LATENCY]),
+            "samplerate": self.fs, "blocksize": self.blocksize,
+            "muted": bool(self.ud[cb.U_MUTE]), "bypassed": bool(self.ud[cb.U_BYPASS]),
+        }
+        if self.stream is not None:
+            snap["stream_latency_s"] = {"input": self.stream.input_latency,
+                                        "output": self.stream.output_latency}
+        snap["meters"] = self._snapshot_meters
+        return snap
+
+    # ---- recording of parameter changes -------------------------------------------------------
+    def _record_initial(self):
+        self._recorded = [(0, prm.name, float(self.proc.p[prm.slot])) for prm in self.proc.schema]
+
+    def _resolve_changes(self):
+        """Give each parameter change the frame at which the callback applied it."""
+        if not self._changes:
+            return
+        applied = int(self.stats[cb.S_PARAM_SEQ])
+        log = self.seqlog
+        keep = []
+        with self._lock:
+            changes, self._changes = self._changes, []
+        for seq, name, v in changes:
+            if seq > applied:
+                keep.append((seq, name, v))
+                continue
+            ok = log[:, 0] >= seq
+            frame = int(log[ok, 1][np.argmin(log[ok, 0])]) if ok.any() else \
+                int(self.stats[cb.S_PARAM_FRAME])
+            self._recorded.append((frame, name, v))
+        with self._lock:
+            self._changes = keep + self._changes
+
+    def _write_automation(self):
+        from ..automation import Automation
+
+        auto = Automation(self.fs, schema=self.proc.schema)
+        for frame, name, v in sorted(self._recorded, key=lambda e: e[0]):
+            auto.add(frame, name, v)
+        auto.save(self.record_dir / "automation.txt")
+
+
+def _db(v):
+    return 20 * math.log10(v) if v > 1e-10 else -200.0

@@ -1,0 +1,150 @@
+"""numba intrinsics for the native audio callback: pointers, a clock, fences, atomics, calls.
+
+Everything here compiles to a few LLVM instructions; none takes the interpreter lock.
+
+- int_to_voidptr / voidptr_to_int : inttoptr / ptrtoint
+- monotonic_ns                    : clock_gettime(CLOCK_MONOTONIC) declared in the module
+                                    (vDSO on Linux x86-64: no system call, no GIL)
+- cycles                          : llvm.readcyclecounter (rdtsc on x86-64)
+- fence_acquire / fence_release / fence_seq_cst : LLVM `fence`
+- load_acquire(a, i) / load_relaxed(a, i) / store_release(a, i, v) / store_relaxed(a, i, v):
+                                    atomic load/store of an int64 array element
+- call_job(addr, job)             : call the function at integer address `addr` with signature
+                                    void(void*) — used to switch kernels at a block boundary
+"""
+from llvmlite import ir
+from numba import types
+from numba.core import cgutils
+from numba.extending import intrinsic
+
+_i64 = ir.IntType(64)
+_i32 = ir.IntType(32)
+
+
+@intrinsic
+def int_to_voidptr(typingctx, addr):
+    sig = types.voidptr(types.int64)
+
+    def codegen(context, builder, signature, args):
+        return builder.inttoptr(args[0], cgutils.voidptr_t)
+
+    return sig, codegen
+
+
+@intrinsic
+def voidptr_to_int(typingctx, ptr):
+    sig = types.int64(types.voidptr)
+
+    def codegen(context, builder, signature, args):
+        return builder.ptrtoint(args[0], _i64)
+
+    return sig, codegen
+
+
+CLOCK_MONOTONIC = 1  # Linux <time.h>
+
+
+@intrinsic
+def monotonic_ns(typingctx):
+    sig = types.int64()
+
+    def codegen(context, builder, signature, args):
+        ts_t = ir.LiteralStructType([_i64, _i64])  # struct timespec on LP64
+        ts = cgutils.alloca_once(builder, ts_t)  # in the entry block: no allocation per call
+        fnty = ir.FunctionType(_i32, [_i32, ts_t.as_pointer()])
+        fn = cgutils.get_or_insert_function(builder.module, fnty, "clock_gettime")
+        builder.call(fn, [ir.Constant(_i32, CLOCK_MONOTONIC), ts])
+        sec = builder.load(cgutils.gep_inbounds(builder, ts, 0, 0))
+        nsec = builder.load(cgutils.gep_inbounds(builder, ts, 0, 1))
+        return builder.add(builder.mul(sec, ir.Constant(_i64, 1_000_000_000)), nsec)
+
+    return sig, codegen
+
+
+@intrinsic
+def cycles(typingctx):
+    sig = types.int64()
+
+    def codegen(context, builder, signature, args):
+        fn = cgutils.get_or_insert_function(builder.module, ir.FunctionType(_i64, []),
+                                            "llvm.readcyclecounter")
+        return builder.call(fn, [])
+
+    return sig, codegen
+
+
+def _fence(ordering):
+    @intrinsic
+    def fence(typingctx):
+        sig = types.void()
+
+        def codegen(context, builder, signature, args):
+            builder.fence(ordering)
+            return context.get_dummy_value()
+
+        return sig, codegen
+
+    return fence
+
+
+fence_acquire = _fence("acquire")
+fence_release = _fence("release")
+fence_seq_cst = _fence("seq_cst")
+
+
+def _elem_ptr(context, builder, aryty, ary, idx):
+    arr = context.make_array(aryty)(context, builder, ary)
+    return cgutils.get_item_pointer(context, builder, aryty, arr, [idx], wraparound=False)
+
+
+def _atomic_load(ordering):
+    @intrinsic
+    def load(typingctx, a, i):
+        if not (isinstance(a, types.Array) and a.dtype == types.int64 and a.ndim == 1):
+            return None
+        sig = types.int64(a, types.intp)
+
+        def codegen(context, builder, signature, args):
+            ptr = _elem_ptr(context, builder, signature.args[0], args[0], args[1])
+            return builder.load_atomic(ptr, ordering, 8)
+
+        return sig, codegen
+
+    return load
+
+
+def _atomic_store(ordering):
+    @intrinsic
+    def store(typingctx, a, i, v):
+        if not (isinstance(a, types.Array) and a.dtype == types.int64 and a.ndim == 1):
+            return None
+        sig = types.void(a, types.intp, types.int64)
+
+        def codegen(context, builder, signature, args):
+            ptr = _elem_ptr(context, builder, signature.args[0], args[0], args[1])
+            builder.store_atomic(args[2], ptr, ordering, 8)
+            return context.get_dummy_value()
+
+        return sig, codegen
+
+    return store
+
+
+load_acquire = _atomic_load("acquire")
+load_relaxed = _atomic_load("monotonic")  # LLVM's name for C++ relaxed
+store_release = _atomic_store("release")
+store_relaxed = _atomic_store("monotonic")
+
+
+@intrinsic
+def call_job(typingctx, addr, job):
+    """Call ``void fn(void *job)`` where fn's address is the int64 ``addr``."""
+    sig = types.void(types.int64, types.voidptr)
+
+    def codegen(context, builder, signature, args):
+        fnty = ir.FunctionType(ir.VoidType(), [cgutils.voidptr_t])
+        fptr = builder.inttoptr(args[0], fnty.as_pointer())
+        builder.call(fptr, [args[1]])
+        return context.get_dummy_value()
+
+    return sig, codegen

@@ -1,0 +1,134 @@
+"""PortAudio devices and a duplex stream whose callback is native code.
+
+sounddevice provides PortAudio's cffi handle; the stream is opened with ``Pa_OpenStream``
+directly so that the callback can be a numba ``@cfunc`` address (sounddevice's own streams call a
+Python function, which needs the interpreter lock).
+"""
+from __future__ import annotations
+
+
+class DeviceError(ValueError):
+    """A device, rate or channel request that cannot be met; one line for the user."""
+
+
+def _sd():
+    try:
+        import sounddevice as sd
+    except OSError as e:  # PortAudio library missing
+        raise DeviceError(f"PortAudio not available ({e}); install libportaudio2, or use "
+                          "--headless") from None
+    return sd
+
+
+def reinitialise():
+    """Make PortAudio rescan host APIs (after a JACK server started, say)."""
+    sd = _sd()
+    sd._terminate()
+    sd._initialize()
+
+
+def list_devices():
+    """Every device as a dict: index, name, host API, channels, default rate."""
+    sd = _sd()
+    apis = sd.query_hostapis()
+    out = []
+    for i, d in enumerate(sd.query_devices()):
+        out.append({"index": i, "name": d["name"], "hostapi": apis[d["hostapi"]]["name"],
+                    "inputs": d["max_input_channels"], "outputs": d["max_output_channels"],
+                    "samplerate": d["default_samplerate"]})
+    return out
+
+
+def find_device(spec, kind):
+    """A device index from an index, a name or part of one; ``None``: the default."""
+    sd = _sd()
+    devs = list_devices()
+    if not devs:
+        raise DeviceError("no audio devices found: check PortAudio and the sound system, or "
+                          "use --headless")
+    if spec is None:
+        idx = sd.default.device[0 if kind == "input" else 1]
+        if idx is None or idx < 0:
+            cand = [d for d in devs if d["inputs" if kind == "input" else "outputs"] > 0]
+            if not cand:
+                raise DeviceError(f"no {kind} device found; choose one with --device")
+            idx = cand[0]["index"]
+        return int(idx)
+    s = str(spec).strip()
+    if s.isdigit():
+        i = int(s)
+        if not 0 <= i < len(devs):
+            raise DeviceError(f"device {s}: no such device, expected 0 to {len(devs) - 1} "
+                              "(see livedyn devices)")
+        return i
+    hits = [d for d in devs if s.lower() in d["name"].lower()]
+    if not hits:
+        names = ", ".join(repr(d["name"]) for d in devs)
+        raise DeviceError(f"device {s!r}: not found, expected one of {names}")
+    return hits[0]["index"]
+
+
+class NativeStream:
+    """A PortAudio duplex stream driven by a native callback address."""
+
+    def __init__(self, callback_address, user_address, in_device, out_device, in_channels,
+                 out_channels, samplerate, blocksize):
+        sd = _sd()
+        self._sd = sd
+        ffi, lib = sd._ffi, sd._lib
+        self._ffi, self._lib = ffi, lib
+        devs = list_devices()
+        din, dout = devs[in_device], devs[out_device]
+        if in_channels > din["inputs"]:
+            raise DeviceError(f"device {din['name']!r} has {din['inputs']} input channels, "
+                              f"{in_channels} requested")
+        if out_channels > dout["outputs"]:
+            raise DeviceError(f"device {dout['name']!r} has {dout['outputs']} output channels, "
+                              f"{out_channels} requested")
+        qi = sd.query_devices(in_device)
+        qo = sd.query_devices(out_device)
+        pin = ffi.NULL
+        if in_channels > 0:
+            self._in = ffi.new("PaStreamParameters*", (
+                in_device, in_channels, lib.paFloat32, qi["default_low_input_latency"],
+                ffi.NULL))
+            pin = self._in
+        self._out = ffi.new("PaStreamParameters*", (
+            out_device, out_channels, lib.paFloat32, qo["default_low_output_latency"], ffi.NULL))
+        err = lib.Pa_IsFormatSupported(pin, self._out, float(samplerate))
+        if err != 0:
+            raise DeviceError(f"samplerate {samplerate:g} Hz with {in_channels} in / "
+                              f"{out_channels} out on {din['name']!r}: {self._text(err)}")
+        self._cb = ffi.cast("PaStreamCallback *", callback_address)
+        self._user = ffi.cast("void *", user_address)
+        pp = ffi.new("PaStream**")
+        err = lib.Pa_OpenStream(pp, pin, self._out, float(samplerate), int(blocksize), 0,
+                                self._cb, self._user)
+        if err < 0:
+            raise DeviceError(f"cannot open {din['name']!r} at {samplerate:g} Hz, block "
+                              f"{blocksize}: {self._text(err)}")
+        self.ptr = pp[0]
+        info = lib.Pa_GetStreamInfo(self.ptr)
+        self.input_latency = float(info.inputLatency)
+        self.output_latency = float(info.outputLatency)
+        self.samplerate = float(info.sampleRate)
+        self.device_names = (din["name"], dout["name"])
+
+    def _text(self, err):
+        return self._ffi.string(self._lib.Pa_GetErrorText(err)).decode(errors="replace")
+
+    def start(self):
+        err = self._lib.Pa_StartStream(self.ptr)
+        if err < 0:
+            raise DeviceError(f"cannot start the stream: {self._text(err)}")
+
+    def active(self):
+        return self._lib.Pa_IsStreamActive(self.ptr) == 1
+
+    def stop(self):
+        self._lib.Pa_StopStream(self.ptr)
+
+    def close(self):
+        if self.ptr is not None:
+            self._lib.Pa_CloseStream(self.ptr)
+            self.ptr = None
