@@ -193,13 +193,36 @@ DEMO_PLAN = [
 ]
 
 
+def _have_soundcard():
+    try:
+        from .engine.stream import list_devices
+
+        return any(d["outputs"] > 0 for d in list_devices())
+    except Exception:
+        return False
+
+
 def cmd_demo(args):
     from . import demo
     from .render import Setup, render
 
     out = Path(args.out)
     _make_folder(out, "--out")
-    print(f"Synthesising the rehearsal scenario ({args.seconds:g} s at {args.samplerate} Hz) "
+    if not (args.seconds > 0):
+        raise CliError(f"--seconds {args.seconds:g}: expected a duration above 0")
+    if not args.offline_only:
+        headless = args.headless or not _have_soundcard()
+        where = "headless (no soundcard found: a JACK server with its dummy backend)" \
+            if headless else "on the default soundcard"
+        print(f"Live: the narrator ducks the music bed, {where}; recording to {out / 'live'}/")
+        _make_folder(out / "live", "--out")
+        run_args = ["run", "--key-demo", "--seconds", str(args.seconds), "--record",
+                    str(out / "live"), "--no-ui", "--samplerate", str(args.samplerate),
+                    "--stats-json", str(out / "live" / "stats.json")]
+        cmd_run(build_parser().parse_args(
+            run_args + (["--headless", "--realtime"] if headless else [])))
+        print()
+    print(f"Offline: synthesising the rehearsal scenario ({args.seconds:g} s at {args.samplerate} Hz) "
           f"into {out}/")
     try:
         files = demo.write_scenario(out / "scenario", samplerate=args.samplerate,
@@ -322,6 +345,11 @@ def cmd_run(args):
     print(f"{proc.algorithm.name}: " + ", ".join(f"{k} {v}" for k, v in proc.describe().items()))
     print(f"latency: processor {proc.latency_samples} samples", end="")
     eng.start()
+    if args.loopback:
+        if server is None:
+            raise CliError("--loopback needs --headless (on hardware, connect a cable)")
+        pairs = server.loopback()
+        print(f"; loopback {', '.join(f'{a}->{b}' for a, b in pairs)}", end="")
     print(f"; stream reports input {1000 * eng.stream.input_latency:.2f} ms, output "
           f"{1000 * eng.stream.output_latency:.2f} ms", flush=True)
     t0 = time.monotonic()
@@ -417,13 +445,17 @@ def build_parser():
     m.add_argument("--json", metavar="FILE")
     m.set_defaults(func=cmd_measure)
 
-    d = sub.add_parser("demo", help="synthesise the rehearsal scenario and process it",
-                       description="Synthesise the built-in rehearsal scenario (drum loop, "
-                                   "music bed, narrator) and process it with the shipped "
-                                   "presets.")
+    d = sub.add_parser("demo", help="the rehearsal demo: live ducking, then offline renders",
+                       description="The built-in rehearsal scenario (drum loop, music bed, "
+                                   "narrator), synthesised by livedyn: first live, the narrator "
+                                   "ducking the music bed (headless when there is no soundcard), "
+                                   "then offline through every shipped preset.")
     d.add_argument("--out", default="demo-out", metavar="DIR")
     d.add_argument("--seconds", type=float, default=16.0)
     d.add_argument("--samplerate", type=int, default=48000)
+    d.add_argument("--offline-only", action="store_true", help="skip the live part")
+    d.add_argument("--headless", action="store_true",
+                   help="run the live part on a JACK dummy server even if a soundcard exists")
     d.set_defaults(func=cmd_demo)
 
     rn = sub.add_parser("run", help="run a processor live on a soundcard or headless",
@@ -451,6 +483,8 @@ def build_parser():
     rn.add_argument("--no-ui", action="store_true", help="print one status line a second")
     rn.add_argument("--headless", action="store_true",
                     help="start a JACK server with its dummy backend (no soundcard needed)")
+    rn.add_argument("--loopback", action="store_true",
+                    help="headless: patch the outputs back to the inputs (latency checks)")
     rn.add_argument("--realtime", action="store_true",
                     help="ask for real-time scheduling where the system allows it")
     rn.set_defaults(func=cmd_run)

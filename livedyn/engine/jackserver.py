@@ -152,6 +152,44 @@ class JackServer:
             raise JackError(f"jack_connect {src} {dst} failed: "
                             f"{(r.stderr or r.stdout).decode(errors='replace').strip()}")
 
+    def disconnect(self, src, dst):
+        env = dict(os.environ)
+        env.update(self.client_env())
+        subprocess.run(["jack_disconnect", src, dst], env=env, capture_output=True, timeout=5)
+
+    def connections(self):
+        """{port: [connected ports]} from ``jack_lsp -c``."""
+        env = dict(os.environ)
+        env.update(self.client_env())
+        r = subprocess.run(["jack_lsp", "-c"], env=env, capture_output=True, timeout=5)
+        out, cur = {}, None
+        for line in r.stdout.decode(errors="replace").splitlines():
+            if not line.strip():
+                continue
+            if line.startswith((" ", "\t")):
+                out.setdefault(cur, []).append(line.strip())
+            else:
+                cur = line.strip()
+                out.setdefault(cur, [])
+        return out
+
+    def loopback(self, client="PortAudio"):
+        """Patch the client's outputs to its own inputs (out_i -> in_i), unpatching the dummy
+        capture ports, so that a stream hears what it plays: for latency measurement."""
+        con = self.connections()
+
+        def num(port):
+            return int(port.rsplit("_", 1)[1])
+
+        ins = sorted((p for p in con if p.startswith(client + ":in_")), key=num)
+        outs = sorted((p for p in con if p.startswith(client + ":out_")), key=num)
+        for src_list, dst in ((con[p], p) for p in ins):
+            for src in src_list:
+                self.disconnect(src, dst)
+        for o, i in zip(outs, ins):
+            self.connect(o, i)
+        return list(zip(outs, ins))
+
     def ports(self):
         env = dict(os.environ)
         env.update(self.client_env())
