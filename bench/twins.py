@@ -13,8 +13,8 @@ the form the kernel documents (for example ``20 / ln 10 * ln a`` for a level in 
 the expected result and any difference points at a difference of logic. Neither the kernels nor
 the twins contract multiply-adds (no fast math), so Python floats and numba's float64 round alike.
 
-Exceptions to plain Python floats: a ratio of 0 (an algorithm without a ratio control leaves the
-slot at 0) gives ``1 / 0 = inf`` as in the kernel's numpy error model, not ZeroDivisionError.
+A ratio below 1 in the parameter array means "no ratio" (an algorithm without a ratio control):
+its slope slot is 0, as in the kernel.
 
 References
 ----------
@@ -88,13 +88,6 @@ def glide_step(v, target, g):
     return v + g * d
 
 
-def inverse(r):
-    """1 / r with IEEE semantics for r = 0 (the kernels' numpy error model)."""
-    if r == 0.0:
-        return math.copysign(math.inf, r)
-    return 1.0 / r
-
-
 # ---- key filters [2] ------------------------------------------------------------------------
 
 def cookbook(kind, f0, q, fs):
@@ -161,12 +154,22 @@ def xfade_len(fs):
 
 
 def new_delay(st, d, fs):
-    """Block boundary: take delay d; a change starts a crossfade from the delay in use."""
+    """Block boundary: take delay d (at once on the first block, else via :func:`next_delay`)."""
     if st[L.S_READY, 0] == 0.0:
         st[L.S_DCUR, 0] = d
         st[L.S_DOLD, 0] = d
         st[L.S_XF, 0] = 0.0
-    elif d != int(st[L.S_DCUR, 0]):
+    else:
+        next_delay(st, d, fs)
+
+
+def next_delay(st, d, fs):
+    """Start a crossfade from the delay in use to d, unless one is running or d is in use.
+
+    A change that finds a crossfade running waits for its end (the sample loop calls this again
+    then), so a half-faded tap is never dropped.
+    """
+    if st[L.S_XF, 0] <= 0.0 and d != int(st[L.S_DCUR, 0]):
         st[L.S_DOLD, 0] = st[L.S_DCUR, 0]
         st[L.S_DCUR, 0] = d
         st[L.S_XF, 0] = xfade_len(fs)
@@ -235,11 +238,14 @@ def dynamics_twin(x, key, out, p, st, ring, tr):
     nk = key.shape[1] if external else ch
     ngain = ch if link == LINK_NONE else 1
 
-    targets = [float(p[P_THRESHOLD]), 1.0 - inverse(float(p[P_RATIO])), float(p[P_KNEE]),
-               float(p[P_MAKEUP]), float(p[P_RANGE]), float(p[P_MIX]) * 0.01,
-               float(p[P_CEILING]), float(p[P_HYSTERESIS])]
+    ratio = float(p[P_RATIO])
+    slope = 1.0 - 1.0 / ratio if ratio >= 1.0 else 0.0  # below 1: no ratio, slot unused
+    targets = [float(p[P_THRESHOLD]), slope, float(p[P_KNEE]), float(p[P_MAKEUP]),
+               float(p[P_RANGE]), float(p[P_MIX]) * 0.01, float(p[P_CEILING]),
+               float(p[P_HYSTERESIS])]
 
-    new_delay(st, ms_to_samples(float(p[P_LOOKAHEAD]), fs), fs)
+    d_target = ms_to_samples(float(p[P_LOOKAHEAD]), fs)
+    new_delay(st, d_target, fs)
     if st[L.S_READY, 0] == 0.0:
         for row, t in zip(_GLIDED, targets):
             st[row, 0] = t
@@ -316,9 +322,19 @@ def dynamics_twin(x, key, out, p, st, ring, tr):
             if linear:
                 amp = math.sqrt(2.0 * lv) if use_rms else lv
                 if decoupled:
-                    # eq. (17) on the level: release stage with instant rise, then attack
-                    e1 = a_rel * st[L.R_ENV1, g] + (1.0 - a_rel) * amp
-                    e1 = flush(amp if amp > e1 else e1)
+                    # eq. (17) on the level: release stage with instant rise (hold delaying its
+                    # release), then attack
+                    e1 = float(st[L.R_ENV1, g])
+                    if amp >= e1:
+                        e1 = amp
+                        st[L.R_HOLD, g] = hold_n
+                    elif st[L.R_HOLD, g] > 0.0:
+                        st[L.R_HOLD, g] -= 1.0
+                    else:
+                        e1 = a_rel * e1 + (1.0 - a_rel) * amp
+                        if amp > e1:
+                            e1 = amp
+                    e1 = flush(e1)
                     st[L.R_ENV1, g] = e1
                     env = flush(a_att * st[L.R_ENV, g] + (1.0 - a_att) * e1)
                 else:
@@ -405,6 +421,13 @@ def dynamics_twin(x, key, out, p, st, ring, tr):
             out[n, c] = min(max(o, -ceil_lin), ceil_lin)
         if xf > 0.0:
             xf -= 1.0
+            if xf <= 0.0 and d_target != d_cur:
+                # a change that waited for this crossfade starts with the next sample
+                st[L.S_XF, 0] = 0.0
+                next_delay(st, d_target, fs)
+                d_cur = int(st[L.S_DCUR, 0])
+                d_old = int(st[L.S_DOLD, 0])
+                xf = float(st[L.S_XF, 0])
         w = (w + 1) % ring_len
 
     for row, v in zip(_GLIDED, cur):
@@ -458,13 +481,55 @@ def _back(i, n):
     return i + n if i < 0 else i
 
 
+def _requirement(ring, ch, i, g, ngain):
+    """Required gain at ring row i for gain channel g: its channel's, or (linked) the least."""
+    if ngain == 1:
+        r = float(ring[i, ch + L.RING_REQ])
+        for c in range(1, ch):
+            v = float(ring[i, ch + 4 * c + L.RING_REQ])
+            if v < r:
+                r = v
+        return r
+    return float(ring[i, ch + 4 * g + L.RING_REQ])
+
+
+def _restart(ring, st, ch, w, t, window, att, ngain):
+    """A new structure: refill each queue from the requirement history, start the moving
+    average from the least requirement it can see, and no gain above the old least gain."""
+    n_ring = ring.shape[0]
+    g_old = 1.0
+    for g in range(int(st[L.S_LIM_NGAIN, 0])):
+        g_old = min(g_old, float(st[L.R_G, g]))
+    for g in range(ngain):
+        col = ch + 4 * g
+        st[L.R_DQ_HEAD, g] = 0.0
+        st[L.R_DQ_LEN, g] = 0.0
+        for back in range(window, 0, -1):
+            _queue_push(ring, st, col, g, _requirement(ring, ch, (w - back) % n_ring, g, ngain),
+                        t - back)
+        span = min(window + att, n_ring - 1)
+        least = 1.0
+        for back in range(1, span + 1):
+            least = min(least, _requirement(ring, ch, (w - back) % n_ring, g, ngain))
+        for back in range(1, att + 2):
+            ring[(w - back) % n_ring, col + L.RING_M] = least
+        st[L.R_BOX, g] = (att + 1.0) * least
+        st[L.R_G, g] = min(g_old, least)
+    st[L.S_LOOK, 0] = window
+    st[L.S_ATT, 0] = att
+    st[L.S_LIM_NGAIN, 0] = ngain
+
+
 def limiter_twin(x, key, out, p, st, ring, tr):
     """One block of the lookahead limiter; same contract as the kernel.
 
-    Requirement r = min(1, ceiling / |x|) (linked: largest |x| over channels, optionally the
-    4x-oversampled true peak [3]); minimum over the last window + 1 requirements with a monotonic
-    queue; moving average over attack + 1 minima; release one-pole with hold, never above the
-    average; a last clamp to the requirement at the output tap.
+    Requirement r = min(1, ceiling / |x|) per channel (optionally the 4x-oversampled true peak
+    [3]), kept for every channel; linked gain uses the least over channels. Minimum over the
+    last window + 1 requirements with a monotonic queue; moving average over attack + 1 minima;
+    release one-pole with hold, never above the average; a last clamp to the requirement of the
+    sample(s) leaving the delay line. A change of lookahead, attack, true-peak detection or link
+    takes effect at the first sample with no delay crossfade running, by a conservative restart
+    (:func:`_restart`); while the delay crossfades, the window covers both taps.
 
     Parameters
     ----------
@@ -479,45 +544,44 @@ def limiter_twin(x, key, out, p, st, ring, tr):
     fs = float(p[P_SAMPLERATE])
     tracing = tr.shape[1] >= frames and frames > 0
     n_ring = ring.shape[0]
-    tp = p[P_TRUE_PEAK] > 0.5
-    look = ms_to_samples(float(p[P_LOOKAHEAD]), fs)
-    att = min(ms_to_samples(float(p[P_ATTACK]), fs), look)
-    tpd = TP_DELAY if tp else 0
-    window = look + (TP_DELAY + TP_SPREAD if tp else 0)
+
+    # what the parameters ask for
+    tp_t = p[P_TRUE_PEAK] > 0.5
+    look_t = ms_to_samples(float(p[P_LOOKAHEAD]), fs)
+    att_t = min(ms_to_samples(float(p[P_ATTACK]), fs), look_t)
+    window_t = look_t + (TP_DELAY + TP_SPREAD if tp_t else 0)
+    d_t = look_t + (TP_DELAY if tp_t else 0)
+    ngain_t = ch if int(p[P_LINK]) == LINK_NONE else 1
     a_rel = coeff(float(p[P_RELEASE]), fs)
     hold_n = math.floor(float(p[P_HOLD]) * fs / 1000.0 + 0.5)
     g_glide = 1.0 - coeff(GLIDE_MS, fs)
-    ngain = ch if int(p[P_LINK]) == LINK_NONE else 1
     t_ceil = float(p[P_CEILING])
+    xf_n = xfade_len(fs)
 
-    new_delay(st, look + tpd, fs)
+    w = int(st[L.S_WPOS, 0])
+    frame0 = float(st[L.S_FRAMES, 0])
+    if st[L.S_READY, 0] == 0.0:
+        st[L.S_CEIL, 0] = t_ceil
+        st[L.S_DCUR, 0] = d_t
+        st[L.S_DOLD, 0] = d_t
+        st[L.S_XF, 0] = 0.0
+        st[L.S_LOOK, 0] = window_t
+        st[L.S_ATT, 0] = att_t
+        st[L.S_LIM_NGAIN, 0] = ngain_t
+        st[L.S_LIM_TP, 0] = 1.0 if tp_t else 0.0
+        for g in range(ngain_t):
+            st[L.R_BOX, g] = att_t + 1.0  # the minima history starts at 1
+        st[L.S_READY, 0] = 1.0
+
+    # what is in use
+    tp = st[L.S_LIM_TP, 0] > 0.5
+    window = int(st[L.S_LOOK, 0])
+    att = int(st[L.S_ATT, 0])
+    ngain = int(st[L.S_LIM_NGAIN, 0])
     d_cur = int(st[L.S_DCUR, 0])
     d_old = int(st[L.S_DOLD, 0])
     xf = float(st[L.S_XF, 0])
-    xf_n = xfade_len(fs)
-    w = int(st[L.S_WPOS, 0])
-    frame0 = float(st[L.S_FRAMES, 0])
-
-    if st[L.S_READY, 0] == 0.0:
-        st[L.S_CEIL, 0] = t_ceil
-        st[L.S_LOOK, 0] = window
-        st[L.S_ATT, 0] = att
-        for g in range(ngain):
-            st[L.R_BOX, g] = att + 1.0  # the minima history starts at 1
-        st[L.S_READY, 0] = 1.0
-    if int(st[L.S_LOOK, 0]) != window or int(st[L.S_ATT, 0]) != att:
-        # new window or attack: refill each queue from the requirement history, re-sum the box
-        for g in range(ngain):
-            col = ch + 4 * g
-            st[L.R_DQ_HEAD, g] = 0.0
-            st[L.R_DQ_LEN, g] = 0.0
-            for back in range(window, 0, -1):
-                _queue_push(ring, st, col, g, ring[(w - back) % n_ring, col + L.RING_REQ],
-                            frame0 - back)
-            st[L.R_BOX, g] = _box_sum(ring, col, (w - 1) % n_ring, att + 1)
-        st[L.S_LOOK, 0] = window
-        st[L.S_ATT, 0] = att
-    n_box = att + 1.0
+    pending = (window, att, ngain, d_cur, tp) != (window_t, att_t, ngain_t, d_t, tp_t)
 
     hist = st[L.R_TP:L.R_TP + TP_PHASE_TAPS]
     ceil = float(st[L.S_CEIL, 0])
@@ -528,6 +592,21 @@ def limiter_twin(x, key, out, p, st, ring, tr):
     meas = [0.0] * ch
     for n in range(frames):
         t = frame0 + n
+        # a change of structure, at the first sample with no crossfade running
+        if pending and xf <= 0.0:
+            a_use = att_t
+            if d_t != d_cur:
+                look_old = d_cur - (TP_DELAY if tp else 0)
+                d_old, d_cur, xf = d_cur, d_t, xf_n
+                use = max(window_t, window)  # both taps inside the window while they fade
+                if look_old < a_use:  # the average no longer than the shorter lookahead
+                    a_use = max(look_old, 0)
+            else:
+                use = window_t
+            tp = tp_t
+            _restart(ring, st, ch, w, t, use, a_use, ngain_t)
+            window, att, ngain = use, a_use, ngain_t
+            pending = window != window_t or att != att_t
         if ceil != t_ceil:
             ceil = glide_step(ceil, t_ceil, g_glide)
             ceil_lin = from_db(ceil)
@@ -544,14 +623,14 @@ def limiter_twin(x, key, out, p, st, ring, tr):
                 a = max(a, _true_peak(hist, tp_pos, c, float(ring[w, c])))
             meas[c] = a
             st[L.R_MEAS, c] = a
+            ring[w, ch + 4 * c + L.RING_REQ] = ceil_lin / a if a > ceil_lin else 1.0
         if tp:
             st[L.R_TP_POS, 0] = (tp_pos + 1) % TP_PHASE_TAPS
         refresh = t % SUM_REFRESH == 0.0
+        n_box = att + 1.0
         for g in range(ngain):
             col = ch + 4 * g
-            a = max(meas) if ngain == 1 else meas[g]
-            r = ceil_lin / a if a > ceil_lin else 1.0
-            ring[w, col + L.RING_REQ] = r
+            r = _requirement(ring, ch, w, g, ngain)
             # 1. minimum of the requirements over the window
             _queue_push(ring, st, col, g, r, t)
             h = int(st[L.R_DQ_HEAD, g])
@@ -565,9 +644,7 @@ def limiter_twin(x, key, out, p, st, ring, tr):
             ring[w, col + L.RING_M] = m
             box = _box_sum(ring, col, w, att + 1) if refresh else st[L.R_BOX, g] + m - oldest
             st[L.R_BOX, g] = box
-            b = box / n_box
-            if att == 0:
-                b = min(b, m)
+            b = m if att == 0 else box / n_box
             # 3. release with hold, never above the average
             gp = float(st[L.R_G, g])
             if b < gp:
@@ -578,11 +655,10 @@ def limiter_twin(x, key, out, p, st, ring, tr):
                 gn = gp
             else:
                 gn = min(a_rel * gp + (1.0 - a_rel) * b, b)
-            # last clamp: the requirement at the output tap (both taps while crossfading)
-            # (indices wrapped below 0 only, as the kernel does: an index past the end raises)
-            lim = float(ring[_back(w - d_cur + tpd, n_ring), col + L.RING_REQ])
+            # last clamp: the requirement of the sample leaving (both taps while crossfading)
+            lim = _requirement(ring, ch, _back(w - d_cur, n_ring), g, ngain)
             if xf > 0.0:
-                lim = min(lim, float(ring[_back(w - d_old + tpd, n_ring), col + L.RING_REQ]))
+                lim = min(lim, _requirement(ring, ch, _back(w - d_old, n_ring), g, ngain))
             if gn > lim:
                 if gn > lim * (1.0 + 1e-9):
                     clamps += 1.0
@@ -592,6 +668,7 @@ def limiter_twin(x, key, out, p, st, ring, tr):
             gdb = to_db(gn)
             gr_max = max(gr_max, -gdb)
             if tracing:
+                a = max(meas) if ngain == 1 else meas[g]
                 tr[L.T_KEY, n, g] = a
                 tr[L.T_LEVEL, n, g] = to_db(a)
                 tr[L.T_CURVE, n, g] = to_db(r)
@@ -605,7 +682,10 @@ def limiter_twin(x, key, out, p, st, ring, tr):
         w = (w + 1) % n_ring
 
     st[L.S_CEIL, 0] = ceil
+    st[L.S_DCUR, 0] = d_cur
+    st[L.S_DOLD, 0] = d_old
     st[L.S_XF, 0] = xf
+    st[L.S_LIM_TP, 0] = 1.0 if tp else 0.0
     st[L.S_WPOS, 0] = w
     st[L.S_NONFINITE, 0] = nonfinite
     st[L.S_CLAMP, 0] = clamps

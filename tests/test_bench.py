@@ -20,6 +20,7 @@ from bench.__main__ import main as bench_main
 from bench.kernels import CASES, ROW_KEYS, TOLERANCE, noise_bursts, report, run_kernels
 from bench.twins import twin_for
 from livedyn.dsp import layout as L
+from livedyn.params import P_RATIO
 from livedyn.processor import Processor
 
 FS = 48000
@@ -47,13 +48,15 @@ def sweep(frames, channels, lo_db=-70.0, hi_db=-10.0):
 
 
 def run_both(algorithm, settings=None, *, frames=2400, blocksize=100, channels=2,
-             key_channels=0, schedule=None, seed=0, trace=True, signal="bursts", gain=1.0):
+             key_channels=0, schedule=None, seed=0, trace=True, signal="bursts", gain=1.0,
+             raw=None):
     """Kernel and twin block by block on identical fresh state; asserts bit-identity.
 
     ``schedule`` maps a block index to {parameter: value} applied (via Processor.set, so values
-    are validated) before that block, to both sides. ``signal``: "bursts" (seeded noise bursts
-    with non-finite and subnormal samples, times ``gain``) or "sweep" (for the key when there
-    is one).
+    are validated) before that block, to both sides. ``raw`` maps parameter slots to values
+    written straight into both parameter arrays (for slots no control of the algorithm
+    writes). ``signal``: "bursts" (seeded noise bursts with non-finite and subnormal samples,
+    times ``gain``) or "sweep" (for the key when there is one).
     """
     proc = Processor(algorithm, FS, channels, key_channels, **(settings or {}))
     kernel, twin = proc._kernel, twin_for(proc.algorithm.kind)
@@ -65,6 +68,8 @@ def run_both(algorithm, settings=None, *, frames=2400, blocksize=100, channels=2
             noise_bursts(seed + 1, frames, key_channels, FS)
     else:
         key = x
+    for slot, value in (raw or {}).items():
+        proc.p[slot] = value
     sides = []
     for _ in range(2):
         sides.append(dict(p=proc.p.copy(), st=proc.st.copy(), ring=proc.ring.copy(),
@@ -107,10 +112,12 @@ def test_twin_matches_kernel_for_every_benchmarked_case(case):
     dict(ballistics="decoupled", hold=5.0, attack=2.0, release=40.0),
     dict(domain="linear", hold=3.0, threshold=-30.0, ratio="inf"),
     dict(domain="linear", ballistics="decoupled", detector="rms"),
+    dict(domain="linear", ballistics="decoupled", hold=4.0, release=30.0),
     dict(topology="feedback", key_lpf=3000.0, ratio=8.0, makeup=4.0),
     dict(link="none", key_bpf=1000.0, key_q=2.0),
     dict(link="mean", automakeup="on", makeup=3.0, mix=60.0, ceiling=-6.0, knee=12.0),
-], ids=["rms", "decoupled+hold", "linear", "linear+decoupled+rms", "feedback+lpf", "link-none+bpf",
+], ids=["rms", "decoupled+hold", "linear", "linear+decoupled+rms", "linear+decoupled+hold",
+        "feedback+lpf", "link-none+bpf",
         "mean+automakeup+mix+ceiling"])
 def test_twin_matches_compressor_settings(settings):
     # Reference: bench.twins (module docstring).
@@ -118,15 +125,25 @@ def test_twin_matches_compressor_settings(settings):
 
 
 def test_twin_matches_lookahead_changes_and_glides_mid_stream():
-    # Reference: bench.twins. Lookahead 0 -> 5 ms -> 2 ms, the second change inside the first
-    # 10 ms crossfade; threshold, makeup, ratio and knee jumps exercise the per-sample glide,
-    # long enough (0.3 s, 30 glide time constants) for every glide to snap onto its target.
-    sched = {3: dict(lookahead=5.0, threshold=-40.0), 6: dict(lookahead=2.0, makeup=6.0),
-             14: dict(ratio=2.0, knee=0.0)}
+    # Reference: bench.twins. Lookahead 0 -> 5 ms (frame 600) -> 2 ms (frame 1000, inside the
+    # 480-frame crossfade, so it waits and starts inside block 5 at frame 1080) -> 0 ms (frame
+    # 1400, inside that crossfade: starts at 1560, inside block 7); threshold, makeup, ratio and
+    # knee jumps exercise the per-sample glide, long enough (0.3 s, 30 glide time constants)
+    # for every glide to snap onto its target.
+    sched = {3: dict(lookahead=5.0, threshold=-40.0), 5: dict(lookahead=2.0, makeup=6.0),
+             7: dict(lookahead=0.0), 14: dict(ratio=2.0, knee=0.0)}
     k, proc = run_both("compressor", dict(key_hpf=100.0), frames=14400, blocksize=200,
                        schedule=sched, seed=5, trace=False)
-    assert k["st"][L.S_DCUR, 0] == round(2.0 * FS / 1000)
+    assert k["st"][L.S_DCUR, 0] == 0 and k["st"][L.S_XF, 0] == 0
     assert k["st"][L.S_THR, 0] == -40.0 and k["st"][L.S_MAKEUP, 0] == 6.0
+
+
+def test_twin_matches_kernel_with_no_ratio_slot():
+    # Reference: bench.twins. A ratio slot below 1 means "no ratio" (slope slot 0), as for an
+    # algorithm without a ratio control; the glide must stay finite and reach its targets.
+    k, _ = run_both("gate", dict(hold=2.0), schedule={4: dict(threshold=-30.0)}, seed=8,
+                    raw={P_RATIO: 0.0})
+    assert not np.isnan(k["st"]).any()
 
 
 def test_twin_matches_decay_into_silence():
@@ -171,7 +188,12 @@ def test_twin_matches_other_laws(algorithm, settings, key_channels):
     (dict(lookahead=5.0), {4: dict(true_peak="on"), 9: dict(lookahead=8.0, attack=3.0),
                            13: dict(lookahead=3.0), 16: dict(ceiling=-6.0),
                            22: dict(attack=1.0, true_peak="off")}),
-], ids=["true-peak", "link-none+hold", "attack-0", "changes-mid-stream"])
+    (dict(lookahead=2.0, release=20.0), {3: dict(link="none"), 9: dict(link="max"),
+                                           12: dict(true_peak="on"), 13: dict(link="none"),
+                                           15: dict(true_peak="off", lookahead=0.1),
+                                           20: dict(link="max", lookahead=0.0),
+                                           21: dict(true_peak="on")}),
+], ids=["true-peak", "link-none+hold", "attack-0", "changes-mid-stream", "link-and-true-peak"])
 def test_twin_matches_limiter(settings, schedule):
     # Reference: bench.twins; ITU-R BS.1770-4 Annex 2 for the true-peak taps (TP_TAPS).
     # frames > SUM_REFRESH so that the exact re-summing of the moving average is crossed; +18 dB
@@ -184,6 +206,8 @@ def test_twin_matches_mono_and_three_channels():
     run_both("compressor", dict(link="none"), channels=1, seed=2)
     run_both("expander", dict(link="mean"), channels=3, seed=6, trace=False)  # mean of 3
     run_both("limiter", dict(link="none"), channels=3, seed=4, trace=False)
+    run_both("limiter", dict(link="none"), channels=3, seed=4, gain=8.0,
+             schedule={5: dict(link="max"), 12: dict(link="none", lookahead=1.0)})
 
 
 # ---- the harness ----------------------------------------------------------------------------

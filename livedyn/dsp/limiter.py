@@ -216,20 +216,25 @@ def limiter_block(x, key, out, p, st, ring, tr):
         t = frame0 + n
         # ---- structure changes, at a sample with no crossfade running --------------------
         if pending and xf <= 0.0:
+            a_use = att_t
             if d_t != d_cur:
+                look_old = d_cur - (TP_DELAY if tp else 0)
                 d_old = d_cur
                 d_cur = d_t
                 xf = xf_len
-                # cover both taps while they crossfade
+                # cover both taps while they crossfade, and keep the moving average no longer
+                # than the shorter lookahead, so that the old tap's sample is inside every term
                 w_use = window_t if window_t > window else window
+                if look_old < a_use:
+                    a_use = look_old if look_old > 0 else 0
             else:
                 w_use = window_t
             tp = tp_t
-            _rebuild(ring, st, ch, w, t, w_use, att_t, ngain_t)
+            _rebuild(ring, st, ch, w, t, w_use, a_use, ngain_t)
             window = w_use
-            att = att_t
+            att = a_use
             ngain = ngain_t
-            pending = window != window_t
+            pending = window != window_t or att != att_t
         if ceil != t_ceil:
             ceil = glide(ceil, t_ceil, g_glide)
             ceil_lin = db_to_amp(ceil)
