@@ -338,7 +338,7 @@ def cmd_run(args):
                      main_inputs=main_in, key_inputs=key_in, outputs=outs, main_source=main_src,
                      key_source=key_src, record_dir=args.record, monitor=args.monitor)
     except BaseException:
-        st._sd()._terminate()
+        st.terminate()
         if server is not None:
             server.stop()
         raise
@@ -386,7 +386,7 @@ def cmd_run(args):
             server.reclaim()
         sys.stdout.flush()
         os._exit(3)  # PortAudio cannot be shut down cleanly once its server is gone
-    st._sd()._terminate()
+    st.terminate()
     if server is not None:
         server.stop()
     print(f"done: {snap['blocks']} blocks, {snap['late_blocks']} late, "
@@ -394,6 +394,54 @@ def cmd_run(args):
           f"{100 * snap['callback_load']['median']:.1f} % / 99.9th "
           f"{100 * snap['callback_load']['p99_9']:.1f} % of the block period"
           + (f"; recorded to {args.record}/" if args.record else ""))
+    return 0
+
+
+def _bench():
+    """The bench/ package of the source tree (it is not installed with livedyn)."""
+    root = Path(__file__).resolve().parent.parent
+    if not (root / "bench" / "__init__.py").exists():
+        raise CliError("the bench harness lives in the source tree's bench/ folder; run livedyn "
+                       "from a clone of the repository")
+    if str(root) not in sys.path:
+        sys.path.insert(0, str(root))
+    import bench
+
+    return bench
+
+
+def cmd_bench(args):
+    _bench()
+    from bench import live
+
+    what = args.what
+    result = {}
+    if what in ("kernels", "all"):
+        from bench.kernels import machine_info, report, run_kernels
+
+        rows = run_kernels(quick=args.quick)
+        result["kernels"] = report(rows, machine_info())
+    if what in ("stream", "all"):
+        seconds = args.seconds or (5.0 if args.quick else 60.0)
+        kw = dict(seconds=seconds, algorithm=args.algorithm, samplerate=int(args.samplerate),
+                  blocksize=args.blocksize, headless=not args.device, device=args.device,
+                  realtime=not args.no_realtime)
+        if args.find_max:
+            best, rows = live.find_max(**kw)
+            print(f"largest safe instance count: {best}")
+            result["stream"] = {"find_max": best, "runs": rows}
+        else:
+            loads = [None, "python-thread", "compile"] if args.load == "all" else \
+                [None if args.load == "none" else args.load]
+            result["stream"] = [live.run_stream(instances=args.instances, load=ld, **kw)
+                                for ld in loads]
+    if what in ("latency", "all"):
+        result["latency"] = live.run_latency(repeats=args.repeats, samplerate=int(args.samplerate),
+                                             blocksize=args.blocksize, headless=not args.device,
+                                             device=args.device, realtime=not args.no_realtime)
+    if args.json:
+        live.write_json(args.json, result)
+        print(f"results written to {args.json}")
     return 0
 
 
@@ -488,6 +536,27 @@ def build_parser():
     rn.add_argument("--realtime", action="store_true",
                     help="ask for real-time scheduling where the system allows it")
     rn.set_defaults(func=cmd_run)
+
+    bn = sub.add_parser("bench", help="what an algorithm costs, stream headroom, latency",
+                        description="Measure kernel cost, live-stream headroom and round-trip "
+                                    "latency (headless JACK server unless --device is given).")
+    bn.add_argument("what", choices=["kernels", "stream", "latency", "all"])
+    bn.add_argument("--quick", action="store_true", help="short runs for a smoke test")
+    bn.add_argument("--algorithm", default="compressor")
+    bn.add_argument("--instances", type=int, default=1, metavar="K")
+    bn.add_argument("--find-max", action="store_true",
+                    help="raise K until blocks are late or the callback passes 70 %% load")
+    bn.add_argument("--load", choices=["none", "python-thread", "compile", "all"], default="all",
+                    help="interpreter load in the same process during the stream run")
+    bn.add_argument("--seconds", type=float, help="stream run length (default 60, quick 5)")
+    bn.add_argument("--repeats", type=int, default=5, help="latency measurements")
+    bn.add_argument("--samplerate", type=float, default=48000.0)
+    bn.add_argument("--blocksize", type=int, default=64)
+    bn.add_argument("--device", help="measure on this device instead of a headless server")
+    bn.add_argument("--no-realtime", action="store_true",
+                    help="do not ask for real-time scheduling on the headless server")
+    bn.add_argument("--json", metavar="FILE")
+    bn.set_defaults(func=cmd_bench)
 
     dv = sub.add_parser("devices", help="list audio devices", description="List audio devices.")
     dv.set_defaults(func=cmd_devices)

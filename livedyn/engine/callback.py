@@ -54,7 +54,8 @@ U_CANARY_EVERY, U_CANARY_NS = 33, 34  # test switch: overrun on purpose every Nt
 U_ELRING, U_RINGLEN = 35, 36  # int64 (ringlen, 3): elapsed ns, interval ns, flags per block
 U_SEQLOG, U_SEQLOG_LEN = 37, 38  # int64 (len, 2): (parameter sequence, frame) when applied
 U_STOPPING = 39
-U_JOB = 40  # the kernel job block of slot 0 lives at ud[U_JOB:U_JOB + JOB_SIZE]
+U_EXTRA, U_NEXTRA = 40, 41  # int64 (n, 2) (fn, job) of extra instances (bench), run after
+U_JOB = 48  # the kernel job block of slot 0 lives at ud[U_JOB:U_JOB + JOB_SIZE]
 UD_SIZE = U_JOB + JOB_SIZE
 
 MONITOR_OUT, MONITOR_KEY, MONITOR_DELTA = 0, 1, 2
@@ -340,6 +341,13 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
     job[J_TRN] = n if monitor == MONITOR_KEY else 0
     call_job(table[slot, 0], int_to_voidptr(jaddr))
     stats[S_KSLOT_USED] = slot
+    ne = ud[U_NEXTRA]
+    if ne > 0:  # more instances of the processor on the same input (load measurement)
+        extra = carray(int_to_voidptr(ud[U_EXTRA]), (ne, 2), np.int64)
+        for e in range(ne):
+            ej = carray(int_to_voidptr(extra[e, 1]), (JOB_SIZE,), np.int64)
+            ej[J_FRAMES] = n
+            call_job(extra[e, 0], int_to_voidptr(extra[e, 1]))
 
     # ---- dry delay line (for bypass and delta, aligned with the processor's latency) --------
     dl = ud[U_DRY_LEN]

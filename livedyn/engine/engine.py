@@ -130,7 +130,7 @@ class Engine:
                  output_device=None, main_inputs=None, key_inputs=None, outputs=None,
                  main_source=None, key_source=None, record_dir=None, ceiling_db=-1.0,
                  fade_in_ms=500.0, fade_out_ms=50.0, mute_ms=5.0, max_frames=8192,
-                 monitor="out", meters=True):
+                 monitor="out", meters=True, instances=1):
         self.proc = processor
         self.fs = processor.samplerate
         self.blocksize = int(blocksize)
@@ -262,6 +262,25 @@ class Engine:
         job[cb.J_TR], job[cb.J_TRN], job[cb.J_TRC] = self.trace.ctypes.data, 0, st.shape[1]
         self.table[0, 0] = kernel.address
         self.table[0, 1] = job.ctypes.data
+        # extra instances (same settings, own state, output discarded) to measure headroom
+        self._extra = []
+        self.extra_table = np.zeros((max(int(instances) - 1, 1), 2), np.int64)
+        self.y_extra = np.zeros((maxf, self.ch), np.float32)
+        for i in range(int(instances) - 1):
+            twin = Processor(processor.algorithm, self.fs, self.ch, self.kch)
+            twin.p[:] = processor.p
+            ej = np.zeros(cb.JOB_SIZE, np.int64)
+            ej[:] = job
+            ej[cb.J_Y] = self.y_extra.ctypes.data
+            ej[cb.J_P] = twin.p.ctypes.data
+            ej[cb.J_ST] = twin.st.ctypes.data
+            ej[cb.J_RING] = twin.ring.ctypes.data
+            ej[cb.J_TRN] = 0
+            self._extra.append((twin, ej))
+            self.extra_table[i, 0] = kernel.address
+            self.extra_table[i, 1] = ej.ctypes.data
+        ud[cb.U_EXTRA] = self.extra_table.ctypes.data
+        ud[cb.U_NEXTRA] = len(self._extra)
         self.stats[cb.S_PERIOD_NS] = int(round(1e9 * self.blocksize / self.fs))
 
         self.meters_in = MeterSet(self.fs, self.ch) if meters else None

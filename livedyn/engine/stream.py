@@ -20,11 +20,19 @@ def _sd():
     return sd
 
 
+def terminate():
+    """Shut PortAudio down (before stopping a JACK server it talks to); idempotent."""
+    sd = _sd()
+    try:
+        sd._terminate()
+    except sd.PortAudioError:
+        pass
+
+
 def reinitialise():
     """Make PortAudio rescan host APIs (after a JACK server started, say)."""
-    sd = _sd()
-    sd._terminate()
-    sd._initialize()
+    terminate()
+    _sd()._initialize()
 
 
 def list_devices():
