@@ -570,6 +570,7 @@ class Engine:
         if self.stream is not None:
             snap["stream_latency_s"] = {"input": self.stream.input_latency,
                                         "output": self.stream.output_latency}
+        snap["realtime_threads"] = realtime_threads()
         snap["meters"] = self._snapshot_meters
         return snap
 
@@ -604,6 +605,23 @@ class Engine:
         for frame, name, v in sorted(self._recorded, key=lambda e: e[0]):
             auto.add(frame, name, v)
         auto.save(self.record_dir / "automation.txt")
+
+
+def realtime_threads():
+    """Threads of this process running with a real-time policy (SCHED_FIFO/RR), read from
+    /proc: the audio callback's thread is among them when real-time scheduling was granted."""
+    import os
+
+    n = 0
+    try:
+        for tid in os.listdir("/proc/self/task"):
+            with open(f"/proc/self/task/{tid}/stat") as f:
+                fields = f.read().rsplit(")", 1)[1].split()
+            if int(fields[38]) in (1, 2):  # field 41 of stat: policy
+                n += 1
+    except (OSError, IndexError, ValueError):
+        return -1
+    return n
 
 
 def _db(v):
