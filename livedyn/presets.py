@@ -260,10 +260,11 @@ def write_text_atomic(path, text: str) -> None:
         except OSError:
             pass
         raise
-    _fsync_dir(folder)
+    fsync_dir(folder)
 
 
-def _fsync_dir(folder: Path) -> None:
+def fsync_dir(folder: Path) -> None:
+    """Make a rename in ``folder`` durable (best effort)."""
     try:
         dfd = os.open(folder, os.O_RDONLY)
     except OSError:

@@ -421,7 +421,9 @@ class WavWriter:
             if isinstance(e, OSError):
                 raise WavError(f"{self._name}: cannot write: {e.strerror or e}") from None
             raise
-        _fsync_dir(self.path.parent)
+        from .presets import fsync_dir
+
+        fsync_dir(self.path.parent)
 
     def abort(self) -> None:
         """Discard what was written: remove the temporary file; the target is untouched."""
@@ -471,16 +473,3 @@ def _set_rf64_downgrade(f) -> bool:
         return _snd.sf_command(f._file, _SFC_RF64_AUTO_DOWNGRADE, _ffi.NULL, 1) == 1
     except Exception:
         return False
-
-
-def _fsync_dir(folder: Path) -> None:
-    try:
-        dfd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(dfd)
-    except OSError:
-        pass
-    finally:
-        os.close(dfd)
