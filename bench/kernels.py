@@ -16,6 +16,12 @@ For every case and block size:
    reported as the extra microseconds per block over the numba-driven figure (median over the
    rounds of the difference to the numba-driven run just before it, under similar load).
 4. **twin**: the twin on a shorter signal, ns per frame, and the ratio twin / numba.
+5. **C**: the plain-C twin (:mod:`bench.ctwin`), compiled at bench time with the system C
+   compiler, is checked against the numba kernel on the check signal (it is expected to be
+   bit-identical) and timed from its own C block loop in every round, right after the numba
+   run; ``numba/C`` is the ratio of the medians. Without a compiler the C columns are empty
+   and the table says why. :func:`run_ctwin` is the dedicated numba-versus-C comparison, with
+   both timed by the same clock inside their native loops.
 
 Figures are ratios within one run on one machine, never bounds: see :func:`machine_info` for
 what they were measured on.
@@ -50,6 +56,8 @@ ROW_KEYS = (
     "py_call_ns_per_frame", "py_call_overhead_us_per_block",
     "process_ns_per_frame", "process_overhead_us_per_block",
     "twin_frames", "twin_ns_per_frame", "twin_ns_min", "twin_ratio", "twin_ratio_of_minima",
+    "c_check", "c_max_abs_diff", "c_bit_identical", "c_mismatch", "c_driver_identical",
+    "c_ns_per_frame", "c_ns_min", "c_ns_max", "numba_over_c", "numba_over_c_of_minima",
 )
 
 
@@ -91,6 +99,13 @@ def noise_bursts(seed, frames, channels, samplerate):
         env[i:i + n] = level
         i += n
     return (rng.standard_normal((frames, channels)) * env[:, None]).astype(np.float32)
+
+
+def _ct():
+    """bench.ctwin, imported on first use (so that ``python -m bench.ctwin`` runs it once)."""
+    from . import ctwin
+
+    return ctwin
 
 
 def _whole_blocks(seconds, samplerate, blocksize):
@@ -194,6 +209,43 @@ def check_case(s, frames, blocksize):
     )
 
 
+def _compare(y_ref, y, n, label):
+    """Largest difference, agreement, and a one-line mismatch note (None when it agrees)."""
+    diff = np.abs(y_ref[:n].astype(np.float64) - y[:n].astype(np.float64))
+    max_diff = float(np.nanmax(diff)) if n else 0.0
+    if np.isnan(diff).any():
+        max_diff = math.inf
+    ok = max_diff <= TOLERANCE
+    note = None
+    if not ok:
+        i, c = np.unravel_index(int(np.argmax(np.where(np.isnan(diff), np.inf, diff))), diff.shape)
+        bad = int(np.count_nonzero(~(diff <= TOLERANCE)))
+        note = (f"{bad} samples differ by more than {TOLERANCE:g}; the largest at frame {i}, "
+                f"channel {c}: kernel {float(y_ref[i, c]):.9g}, {label} {float(y[i, c]):.9g}")
+    return max_diff, ok, note
+
+
+def check_ctwin(s, lib, frames, blocksize):
+    """The C twin against the numba kernel on the first ``frames``, both from fresh state.
+
+    Both are driven block by block from their native loops; the result dict has ``c_check``
+    ("ok" or "MISMATCH"), ``c_max_abs_diff``, ``c_bit_identical`` (outputs and final states)
+    and ``c_mismatch``.
+    """
+    x, key = s.x[:frames], s.key[:frames]
+    p1, st1, ring1 = s.fresh()
+    p2, st2, ring2 = s.fresh()
+    y1 = np.zeros_like(x)
+    y2 = np.zeros_like(x)
+    n = drive(s.kernel, x, key, y1, p1, st1, ring1, s.tr, blocksize)
+    lib.drive(s.proc.algorithm.kind, x, key, y2, p2, st2, ring2, s.tr, blocksize)
+    max_diff, ok, note = _compare(y1, y2, n, "C twin")
+    return dict(c_check="ok" if ok else "MISMATCH", c_max_abs_diff=max_diff,
+                c_bit_identical=bool(np.array_equal(y1, y2) and _state_equal(st1, st2)
+                                     and _state_equal(ring1, ring2)),
+                c_mismatch=note)
+
+
 def _spread(samples):
     q1, _, q3 = statistics.quantiles(samples, n=4, method="inclusive") if len(samples) > 1 \
         else (samples[0],) * 3
@@ -255,6 +307,38 @@ class Timer:
         python_blocks(s.twin, s.x[:n], s.key[:n], self.out_twin, p, st, ring, s.tr, self.bs)
         self.twin_ns.append((time.perf_counter_ns() - t0) / n)
 
+    def attach_ctwin(self, lib):
+        """Also time the C twin (``lib``, a :class:`bench.ctwin.CTwin`) in every round."""
+        self.c_lib = lib
+        self.p_c, self.st_c, self.ring_c = self.s.fresh()
+        self.out_c = np.zeros_like(self.s.x)
+        self.c_ns = []
+
+    def ctwin(self, record=True):
+        """The C twin from its own C block loop (elapsed ns of CLOCK_MONOTONIC around it)."""
+        s = self.s
+        s.reset(self.st_c, self.ring_c)
+        ns = self.c_lib.drive(s.proc.algorithm.kind, s.x, s.key, self.out_c, self.p_c,
+                              self.st_c, self.ring_c, s.tr, self.bs)
+        if record:
+            self.c_ns.append(ns / self.frames)
+
+    def c_result(self):
+        """The C timing fields of a row (empty when the C twin was not timed)."""
+        if not getattr(self, "c_ns", None):
+            return {}
+        csp = _spread(self.c_ns)
+        med = statistics.median(self.numba_ns)
+        return dict(
+            c_driver_identical=bool(np.array_equal(self.out[:self.frames],
+                                                   self.out_c[:self.frames])
+                                    and _state_equal(self.st, self.st_c)
+                                    and _state_equal(self.ring, self.ring_c)),
+            c_ns_per_frame=csp["median"], c_ns_min=csp["min"], c_ns_max=csp["max"],
+            numba_over_c=med / csp["median"],
+            numba_over_c_of_minima=min(self.numba_ns) / csp["min"],
+        )
+
     def result(self):
         """The timing fields of a row."""
         nsp = _spread(self.numba_ns)
@@ -300,7 +384,7 @@ def _stderr(msg):
 
 def run_kernels(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, seconds=None,
                 out=print, *, repeats=None, check_seconds=CHECK_SECONDS, twin_seconds=None,
-                twin_repeats=None, cases=CASES, progress=_stderr):
+                twin_repeats=None, cases=CASES, progress=_stderr, ctwin=True):
     """Check every case's kernel against its twin, time both, print a table; return the rows.
 
     The timed runs are interleaved: each round times every case once, so that changes in the
@@ -332,12 +416,16 @@ def run_kernels(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000
         What to run.
     progress : callable or None
         Receives progress messages (stderr by default).
+    ctwin : bool
+        Also check and time the plain-C twin (:mod:`bench.ctwin`); compiled on first use. Where
+        no C compiler exists its columns stay empty and the table says why.
 
     Returns
     -------
     list of dict
         One row per case and block size, with the keys of :data:`ROW_KEYS`; the timing values are
-        None where the check failed.
+        None where the check failed. ``c_check`` is "ok", "MISMATCH" (no C timings) or
+        "skipped".
     """
     progress = progress or (lambda msg: None)
     seconds = (1.0 if quick else DEFAULT_SECONDS) if seconds is None else float(seconds)
@@ -352,6 +440,15 @@ def run_kernels(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000
         raise ValueError(f"repeats = {repeats}, twin_repeats = {twin_repeats}: expected >= 1")
 
     info = machine_info()
+    c_lib, c_note = None, "C twin not run (ctwin=False)"
+    if ctwin:
+        try:
+            c_lib = _ct().load()
+            c_note = None
+            progress(f"C twin: {c_lib.path.name} ({_ct().compiler_line()})")
+        except _ct().CTwinUnavailable as exc:
+            c_note = str(exc)
+            progress(c_note)
     rows, timers = [], []
     total = len(cases) * len(blocksizes)
     k = 0
@@ -369,19 +466,32 @@ def run_kernels(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000
                        settings=dict(case.settings), blocksize=bs, channels=channels,
                        key_channels=case.key_channels, samplerate=float(samplerate))
             row.update(check_case(s, check_frames, bs))
+            row["c_check"] = "skipped"
+            if c_lib is not None:
+                row.update(check_ctwin(s, c_lib, check_frames, bs))
+                if row["c_check"] != "ok":
+                    progress(f"    C twin {row['c_check']}: {row['c_mismatch']}")
             rows.append(row)
             if row["check"] == "ok":
-                timers.append((row, Timer(s, bs, twin_frames)))
+                timer = Timer(s, bs, twin_frames)
+                if row["c_check"] == "ok":
+                    timer.attach_ctwin(c_lib)
+                timers.append((row, timer))
             else:
                 progress(f"    {row['check']}: {row['mismatch']}")
 
     progress(f"warm-up of {len(timers)} case(s)")
     for _, t in timers:
         t.warm_up()
+        if hasattr(t, "c_ns"):
+            t.ctwin(record=False)
     for r in range(repeats):
-        progress(f"timing round {r + 1}/{repeats}: numba-driven, Python calls, Processor.process")
+        progress(f"timing round {r + 1}/{repeats}: numba-driven, C twin, Python calls, "
+                 "Processor.process")
         for _, t in timers:
             t.numba()
+            if hasattr(t, "c_ns"):
+                t.ctwin()
             t.call()
             t.process()
     for r in range(twin_repeats):
@@ -390,10 +500,208 @@ def run_kernels(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000
             t.twin()
     for row, t in timers:
         row.update(t.result())
+        row.update(t.c_result())
     if out is not None:
-        for line in format_table(rows, info, repeats):
+        for line in format_table(rows, info, repeats, c_note=c_note):
             out(line)
     return rows
+
+
+# ---- numba kernel versus its C twin ---------------------------------------------------------
+
+CTWIN_ROW_KEYS = (
+    "case", "algorithm", "settings", "blocksize", "channels", "key_channels", "samplerate",
+    "c_check", "c_max_abs_diff", "c_bit_identical", "c_mismatch", "c_driver_identical",
+    "frames", "repeats", "numba_ns_per_frame", "numba_ns_min", "numba_ns_max", "numba_ns_q1",
+    "numba_ns_q3", "c_ns_per_frame", "c_ns_min", "c_ns_max", "c_ns_q1", "c_ns_q3",
+    "numba_over_c", "numba_over_c_of_minima", "numba_over_c_paired",
+)
+
+
+class CPair:
+    """One case timed both ways from identical fresh state, each from its native block loop."""
+
+    def __init__(self, setup, blocksize, lib):
+        self.s, self.bs, self.lib = setup, blocksize, lib
+        self.p_n, self.st_n, self.ring_n = setup.fresh()
+        self.p_c, self.st_c, self.ring_c = setup.fresh()
+        self.out_n = np.zeros_like(setup.x)
+        self.out_c = np.zeros_like(setup.x)
+        self.frames = setup.x.shape[0] - setup.x.shape[0] % blocksize
+        self.numba_ns, self.c_ns = [], []
+
+    def numba(self, record=True):
+        s = self.s
+        s.reset(self.st_n, self.ring_n)
+        ns = _ct().numba_drive_timed(self.lib, s.kernel, s.x, s.key, self.out_n, self.p_n,
+                                  self.st_n, self.ring_n, s.tr, self.bs)
+        if record:
+            self.numba_ns.append(ns / self.frames)
+
+    def c(self, record=True):
+        s = self.s
+        s.reset(self.st_c, self.ring_c)
+        ns = self.lib.drive(s.proc.algorithm.kind, s.x, s.key, self.out_c, self.p_c, self.st_c,
+                            self.ring_c, s.tr, self.bs)
+        if record:
+            self.c_ns.append(ns / self.frames)
+
+    def result(self):
+        n, c = _spread(self.numba_ns), _spread(self.c_ns)
+        return dict(
+            c_driver_identical=bool(np.array_equal(self.out_n[:self.frames],
+                                                   self.out_c[:self.frames])
+                                    and _state_equal(self.st_n, self.st_c)
+                                    and _state_equal(self.ring_n, self.ring_c)),
+            frames=self.frames, repeats=len(self.numba_ns),
+            numba_ns_per_frame=n["median"], numba_ns_min=n["min"], numba_ns_max=n["max"],
+            numba_ns_q1=n["q1"], numba_ns_q3=n["q3"],
+            c_ns_per_frame=c["median"], c_ns_min=c["min"], c_ns_max=c["max"], c_ns_q1=c["q1"],
+            c_ns_q3=c["q3"],
+            numba_over_c=n["median"] / c["median"],
+            numba_over_c_of_minima=n["min"] / c["min"],
+            numba_over_c_paired=statistics.median(a / b for a, b in zip(self.numba_ns,
+                                                                        self.c_ns)),
+        )
+
+
+def run_ctwin(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, seconds=None,
+              out=print, *, repeats=None, check_seconds=CHECK_SECONDS, cases=CASES,
+              progress=_stderr, lib=None):
+    """The numba kernels against their plain-C twins: check, time both, print a table.
+
+    Each case runs from identical fresh state on the same seeded noise bursts. The C twin
+    (:mod:`bench.ctwin`) must agree with the numba kernel on the check signal (bit-identical is
+    expected; within :data:`TOLERANCE` is accepted and shown) and again over the whole timing
+    signal. Timing: the numba kernel from an ``@njit`` block loop, the C twin from a C block
+    loop in the same library as the clock; both loops read ``CLOCK_MONOTONIC`` around
+    themselves, so the figures cover the same work. Warm-up, then ``repeats`` rounds; in each
+    round every case runs numba then C, so load from other processes falls on both alike.
+
+    Parameters
+    ----------
+    quick : bool
+        Fewer repeats (5) and a shorter timing signal (1 s).
+    blocksizes : sequence of int
+        Frames per block.
+    channels : int
+        Main channels.
+    samplerate : float
+        Hz.
+    seconds : float, optional
+        Length of the timing signal (default 4 s, quick 1 s).
+    out : callable or None
+        Receives each line of the table.
+    repeats : int, optional
+        Timed rounds (default 15, quick 5).
+    check_seconds : float
+        Length of the check signal.
+    cases : sequence of Case
+        What to run.
+    progress : callable or None
+        Receives progress messages.
+    lib : bench.ctwin.CTwin, optional
+        The C twin (default: :func:`bench.ctwin.load`).
+
+    Returns
+    -------
+    list of dict
+        One row per case and block size with the keys of :data:`CTWIN_ROW_KEYS`. Without a C
+        compiler every row has ``c_check = "skipped"`` and no timings, and the table says why.
+    """
+    progress = progress or (lambda msg: None)
+    seconds = (1.0 if quick else DEFAULT_SECONDS) if seconds is None else float(seconds)
+    repeats = (5 if quick else 15) if repeats is None else int(repeats)
+    blocksizes = [int(b) for b in blocksizes]
+    for b in blocksizes:
+        if b < 1:
+            raise ValueError(f"blocksize = {b}: expected a whole number of frames >= 1")
+    if repeats < 1:
+        raise ValueError(f"repeats = {repeats}: expected >= 1")
+    info = machine_info()
+    note = None
+    if lib is None:
+        try:
+            lib = _ct().load()
+        except _ct().CTwinUnavailable as exc:
+            note = str(exc)
+            progress(note)
+    rows, pairs = [], []
+    for case in cases:
+        for bs in blocksizes:
+            row = dict.fromkeys(CTWIN_ROW_KEYS)
+            row.update(case=case.name, algorithm=case.algorithm, settings=dict(case.settings),
+                       blocksize=bs, channels=channels, key_channels=case.key_channels,
+                       samplerate=float(samplerate), c_check="skipped")
+            rows.append(row)
+            if lib is None:
+                continue
+            frames = _whole_blocks(max(seconds, check_seconds), samplerate, bs)
+            s = Setup(case, samplerate, channels, frames)
+            progress(f"check {case.name}, block {bs}: numba kernel vs C twin")
+            row.update(check_ctwin(s, lib, min(frames, _whole_blocks(check_seconds, samplerate,
+                                                                     bs)), bs))
+            if row["c_check"] == "ok":
+                pairs.append((row, CPair(s, bs, lib)))
+            else:
+                progress(f"    {row['c_check']}: {row['c_mismatch']}")
+    if pairs:
+        progress(f"warm-up of {len(pairs)} case(s)")
+        for _, pr in pairs:
+            pr.numba(record=False)
+            pr.c(record=False)
+        for r in range(repeats):
+            progress(f"timing round {r + 1}/{repeats}: numba, C")
+            for _, pr in pairs:
+                pr.numba()
+                pr.c()
+        for row, pr in pairs:
+            row.update(pr.result())
+    if out is not None:
+        for line in format_ctwin_table(rows, info, lib, note):
+            out(line)
+    return rows
+
+
+def format_ctwin_table(rows, info=None, lib=None, note=None):
+    """The rows of :func:`run_ctwin` as lines of a text table."""
+    lines = []
+    if info is not None:
+        load = info.get("load_average_1_5_15")
+        lines.append(f"CPU: {info['cpu_model']}, {info['cores']} cores; load "
+                     + (" ".join(f"{v:.2f}" for v in load) if load else "unknown")
+                     + f"; numba {info['numba']}, llvmlite {info['llvmlite']}")
+    lines.append(f"C: {_ct().compiler_line()}" + (f"; {lib.path.name}" if lib is not None else ""))
+    if rows:
+        r0 = rows[0]
+        lines.append(f"{r0['channels']} ch, {r0['samplerate']:g} Hz; ns per frame (all channels), "
+                     f"median [min-max] of {r0['repeats'] or '-'} interleaved runs each")
+    head = (f"{'case':<22}{'block':>6}  {'check':<14}{'numba ns/fr':>12} {'[min-max]':<14}"
+            f"{'C ns/fr':>9} {'[min-max]':<14}{'numba/C':>8}{'of minima':>10}{'paired':>8}")
+    lines.append(head)
+    lines.append("-" * len(head))
+    for r in rows:
+        if r["c_check"] == "ok":
+            chk = "bit-identical" if r["c_bit_identical"] else f"ok {r['c_max_abs_diff']:.1e}"
+            if r["c_driver_identical"] is False:
+                chk += "*"
+        else:
+            chk = r["c_check"]
+        if r["c_ns_per_frame"] is None:
+            why = note if r["c_check"] == "skipped" else r["c_mismatch"]
+            lines.append(f"{r['case']:<22}{r['blocksize']:>6}  {chk:<14}no timings: {why}")
+            continue
+        ns = f"[{r['numba_ns_min']:.1f}-{r['numba_ns_max']:.1f}]"
+        cs = f"[{r['c_ns_min']:.1f}-{r['c_ns_max']:.1f}]"
+        lines.append(
+            f"{r['case']:<22}{r['blocksize']:>6}  {chk:<14}{r['numba_ns_per_frame']:>12.1f} "
+            f"{ns:<14}{r['c_ns_per_frame']:>9.1f} {cs:<14}{r['numba_over_c']:>8.2f}"
+            f"{r['numba_over_c_of_minima']:>10.2f}{r['numba_over_c_paired']:>8.2f}")
+    lines.append("numba/C: ratio of the medians; of minima: of the fastest runs; paired: median "
+                 "of the per-round ratios (numba and C run back to back).")
+    if any(r["c_driver_identical"] is False for r in rows):
+        lines.append("*: outputs or states differed over the whole timing signal.")
+    return lines
 
 
 # ---- reporting ------------------------------------------------------------------------------
@@ -442,8 +750,18 @@ def _num(v, fmt):
     return "-" if v is None else format(v, fmt)
 
 
-def format_table(rows, info=None, repeats=None):
-    """The rows as lines of a text table."""
+def _c_cells(r):
+    """The two C columns of a row: C ns/fr and numba/C, or why they are empty."""
+    chk = r.get("c_check")
+    if chk == "MISMATCH":
+        return "MISMATCH", "-"
+    if r.get("c_ns_per_frame") is None:
+        return "-", "-"
+    return f"{r['c_ns_per_frame']:.1f}", f"{r['numba_over_c']:.2f}"
+
+
+def format_table(rows, info=None, repeats=None, c_note=None):
+    """The rows as lines of a text table; ``c_note`` says why the C columns are empty."""
     lines = []
     if info is not None:
         load = info.get("load_average_1_5_15")
@@ -458,7 +776,7 @@ def format_table(rows, info=None, repeats=None):
                      f"{TOLERANCE:g}")
     head = (f"{'case':<22}{'block':>6}  {'check':<14}{'numba ns/fr':>12} {'[min-max]':<14}"
             f"{'us/blk':>8}{'x realtime':>11}{'call +us':>10}{'proc +us':>10}"
-            f"{'twin ns/fr':>12}{'twin/numba':>11}")
+            f"{'twin ns/fr':>12}{'twin/numba':>11}{'C ns/fr':>10}{'numba/C':>9}")
     lines.append(head)
     lines.append("-" * len(head))
     for r in rows:
@@ -476,9 +794,18 @@ def format_table(rows, info=None, repeats=None):
             f"{spread:<14}{r['us_per_block']:>8.2f}{r['x_realtime']:>11.0f}"
             f"{_num(r['py_call_overhead_us_per_block'], '.2f'):>10}"
             f"{_num(r['process_overhead_us_per_block'], '.2f'):>10}"
-            f"{r['twin_ns_per_frame']:>12.0f}{r['twin_ratio']:>11.0f}")
+            f"{r['twin_ns_per_frame']:>12.0f}{r['twin_ratio']:>11.0f}"
+            + "{:>10}{:>9}".format(*_c_cells(r)))
     lines.append("call +us / proc +us: extra time per block when each block is a Python call to "
                  "the kernel / to Processor.process.")
+    if c_note:
+        lines.append(f"C ns/fr, numba/C: {c_note}")
+    else:
+        lines.append("C ns/fr: the plain-C twin (bench/ctwin/kernels.c) from a C block loop, "
+                     "median; numba/C: ratio of the medians (numba = the column above).")
+        bad = [f"{r['case']} {r['blocksize']}" for r in rows if r.get("c_check") == "MISMATCH"]
+        if bad:
+            lines.append("C twin MISMATCH (no C timings): " + ", ".join(bad))
     return lines
 
 

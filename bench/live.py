@@ -112,6 +112,10 @@ def run_stream(seconds=10.0, algorithm="compressor", instances=1, samplerate=480
             time.sleep(seconds)
             snap = eng.snapshot()
             eng.stop()
+        nb = min(snap["blocks"], len(eng.elring))
+        from livedyn.engine.callback import S_PERIOD_NS
+
+        shares = eng.elring[:nb, 0] / float(eng.stats[S_PERIOD_NS])
         rss1 = _rss_kib()
         res = {
             "algorithm": algorithm, "instances": instances, "samplerate": samplerate,
@@ -123,6 +127,8 @@ def run_stream(seconds=10.0, algorithm="compressor", instances=1, samplerate=480
             "memory_growth_kib": rss1 - rss0,
             "stream_latency_s": snap.get("stream_latency_s"),
             "realtime_granted": bool(server.realtime_granted) if server else None,
+            "realtime_threads": snap.get("realtime_threads"),
+            "callback_shares": shares,  # per block; not written to JSON
         }
         if out:
             out(format_stream(res))

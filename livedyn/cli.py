@@ -282,6 +282,16 @@ def _status_line(snap, t):
 
 
 def cmd_run(args):
+    from .engine.jackserver import JackError
+    from .engine.stream import DeviceError
+
+    try:
+        return _cmd_run(args)
+    except (DeviceError, JackError) as e:  # a device, rate or channel that cannot be had
+        raise CliError(str(e).splitlines()[0] if str(e) else type(e).__name__) from None
+
+
+def _cmd_run(args):
     import os
     import time
 
@@ -295,6 +305,8 @@ def cmd_run(args):
         raise CliError(f"--seconds {args.seconds:g}: expected a duration above 0")
     if not 16 <= args.blocksize <= 8192:
         raise CliError(f"--blocksize {args.blocksize}: expected 16 to 8192 frames")
+    if args.loopback and not args.headless:
+        raise CliError("--loopback needs --headless (on hardware, connect a cable)")
     fs = args.samplerate
     main_in = _channel_list(args.main_inputs, "--main-inputs")
     key_in = _channel_list(args.key_inputs, "--key-inputs")
@@ -337,19 +349,22 @@ def cmd_run(args):
                      input_device=args.input_device, output_device=args.output_device,
                      main_inputs=main_in, key_inputs=key_in, outputs=outs, main_source=main_src,
                      key_source=key_src, record_dir=args.record, monitor=args.monitor)
+        print(f"{proc.algorithm.name}: " +
+              ", ".join(f"{k} {v}" for k, v in proc.describe().items()))
+        print(f"latency: processor {proc.latency_samples} samples", end="")
+        try:
+            eng.start()  # checks rate and channels before the stream opens
+        finally:
+            if eng.stream is None:
+                print(flush=True)  # end the line begun above
+        if args.loopback:
+            pairs = server.loopback()
+            print(f"; loopback {', '.join(f'{a}->{b}' for a, b in pairs)}", end="")
     except BaseException:
-        st.terminate()
+        st.terminate()  # closes a stream left open, before its server goes
         if server is not None:
             server.stop()
         raise
-    print(f"{proc.algorithm.name}: " + ", ".join(f"{k} {v}" for k, v in proc.describe().items()))
-    print(f"latency: processor {proc.latency_samples} samples", end="")
-    eng.start()
-    if args.loopback:
-        if server is None:
-            raise CliError("--loopback needs --headless (on hardware, connect a cable)")
-        pairs = server.loopback()
-        print(f"; loopback {', '.join(f'{a}->{b}' for a, b in pairs)}", end="")
     print(f"; stream reports input {1000 * eng.stream.input_latency:.2f} ms, output "
           f"{1000 * eng.stream.output_latency:.2f} ms", flush=True)
     t0 = time.monotonic()
@@ -360,7 +375,8 @@ def cmd_run(args):
             time.sleep(0.05)
             t = time.monotonic() - t0
             if not eng.watch() or (server is not None and not server.alive()):
-                failure = eng.error or "the JACK server stopped"
+                failure = eng.error or (f"the JACK server {server.name} stopped while the "
+                                        "stream ran (killed or crashed)")
                 break
             if t >= next_line:
                 print(_status_line(eng.snapshot(), t), flush=True)
@@ -439,6 +455,29 @@ def cmd_bench(args):
         result["latency"] = live.run_latency(repeats=args.repeats, samplerate=int(args.samplerate),
                                              blocksize=args.blocksize, headless=not args.device,
                                              device=args.device, realtime=not args.no_realtime)
+    plots = []
+    if args.plot:
+        from bench import plots as bp
+
+        if not bp.have_matplotlib():
+            print("(no plots: install the plot extra, pip install 'livedyn[plot]')")
+        else:
+            Path(args.plot).mkdir(parents=True, exist_ok=True)
+            if "kernels" in result:
+                plots.append(Path(args.plot) / "kernel-cost.png")
+                bp.plot_kernel_cost(result["kernels"]["rows"], plots[-1])
+            runs = result.get("stream")
+            runs = runs["runs"] if isinstance(runs, dict) else runs
+            if runs:
+                plots.append(Path(args.plot) / "callback-times.png")
+                bp.plot_callback_histogram(runs[0]["callback_shares"], plots[-1],
+                                           title=f"callback time, {runs[0]['algorithm']}, "
+                                                 f"block {runs[0]['blocksize']}")
+            for p in plots:
+                print(f"plot: {p}")
+    for r in (result.get("stream") if isinstance(result.get("stream"), list) else
+              (result.get("stream") or {}).get("runs", [])):
+        r.pop("callback_shares", None)
     if args.json:
         live.write_json(args.json, result)
         print(f"results written to {args.json}")
@@ -556,6 +595,7 @@ def build_parser():
     bn.add_argument("--no-realtime", action="store_true",
                     help="do not ask for real-time scheduling on the headless server")
     bn.add_argument("--json", metavar="FILE")
+    bn.add_argument("--plot", metavar="DIR", help="write PNG plots here (plot extra)")
     bn.set_defaults(func=cmd_bench)
 
     dv = sub.add_parser("devices", help="list audio devices", description="List audio devices.")

@@ -359,7 +359,18 @@ def dynamics_block(x, key, out, p, st, ring, tr):
         # ---- gain, mix, ceiling ------------------------------------------------------------
         for c in range(ch):
             g = 0 if ngain == 1 else c
-            xd = read_delayed(ring, w, c, d_cur, d_old, xf, xf_len)
+            # the delayed sample, crossfading from the old delay (written out here rather than
+            # called: a call passing the ring array keeps a reference-count pair per sample)
+            i = w - d_cur
+            if i < 0:
+                i += ring_len
+            xd = ring[i, c]
+            if xf > 0.0:
+                j = w - d_old
+                if j < 0:
+                    j += ring_len
+                wgt = 1.0 - xf / xf_len
+                xd = wgt * xd + (1.0 - wgt) * ring[j, c]
             wet = xd * st[R_GAIN, g]
             if feedback:
                 st[R_FB, c] = flush(xd * db_to_amp(st[R_Y, g]))
