@@ -433,9 +433,10 @@ def cmd_bench(args):
     what = args.what
     result = {}
     if what in ("kernels", "all"):
-        from bench.kernels import machine_info, report, run_kernels
+        from bench.kernels import machine_info, report
+        from bench.sweep import run_sweep
 
-        rows = run_kernels(quick=args.quick)
+        rows = run_sweep(quick=args.quick)
         result["kernels"] = report(rows, machine_info())
     if what in ("stream", "all"):
         seconds = args.seconds or (5.0 if args.quick else 60.0)

@@ -36,3 +36,12 @@ def test_percentile_share_on_a_synthetic_timing_series():
     assert percentile_share(t, period, 50) == pytest.approx(10_000 / period)
     assert percentile_share(t, period, 99.9) == pytest.approx(100_000 / period)
     assert percentile_share(t, period, 98) == pytest.approx(10_000 / period)
+
+
+def test_instances_per_core():
+    from bench.sweep import instances_per_core
+
+    # 48 kHz: one frame every 20833 ns; 70 % of that is 14583 ns; at 60 ns per frame, 243
+    assert instances_per_core(60.0, 48000) == 243
+    assert instances_per_core(20000.0, 48000) == 0
+    assert instances_per_core(None, 48000) is None

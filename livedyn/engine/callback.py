@@ -477,7 +477,9 @@ def native_callback(inp_ptr, out_ptr, frames, time_info, status, user):
         stats[S_EL_MAX] = el
     period = stats[S_PERIOD_NS]
     over = 1 if (period > 0 and el > period) else 0
-    if over:
+    # a block that started late was counted by block_body already: count each block once
+    started_late = period > 0 and 2 * interval > 3 * period and stats[S_LAST_OVERRUN] == 0
+    if over and not started_late:
         stats[S_LATE] += 1
     stats[S_LAST_OVERRUN] = over
     rl = ud[U_RINGLEN]

@@ -24,6 +24,7 @@ from .stream import DeviceError, NativeStream, find_device
 
 RING_SECONDS = 1.0
 TAP_SECONDS = 2.0
+RECENT_SECONDS = 5.0
 ELRING = 1 << 16
 SEQLOG = 4096
 
@@ -286,6 +287,9 @@ class Engine:
         self.meters_in = MeterSet(self.fs, self.ch) if meters else None
         self.meters_out = MeterSet(self.fs, self.ch) if meters else None
         self._snapshot_meters = {}
+        self._recent = np.zeros((int(RECENT_SECONDS * self.fs), self.ch + self.kch), np.float32)
+        self._recent_pos = 0
+        self._recent_lock = threading.Lock()
         self._changes = []  # (seq, name, value) for the automation recording
         self._recorded = []  # (frame, name, value)
         self._threads = []
@@ -325,11 +329,12 @@ class Engine:
         for src, ring in ((self.main_source, self.main_ring), (self.key_source, self.key_ring)):
             if src is not None:
                 self._feed(src, ring, until_full=True)
-        if self.record_dir is not None:
-            self._open_writers()
+        # open (and so check rate and channels) before any recording file is created
         self.stream = NativeStream(cb.native_callback.address, self.ud.ctypes.data,
                                    self._devices[0], self._devices[1], self.n_in, self.n_out,
                                    self.fs, self.blocksize)
+        if self.record_dir is not None:
+            self._open_writers()
         self.t_start = time.monotonic()
         self.stream.start()
         for target in (self._feeder_loop, self._tap_loop):
@@ -387,6 +392,7 @@ class Engine:
             if n == 0:
                 return
             blk = chunk[:n]
+            self._remember(blk[:, :self.ch + self.kch])
             xin = np.ascontiguousarray(blk[:, :self.ch])
             key = np.ascontiguousarray(blk[:, self.ch:self.ch + self.kch])
             yout = np.ascontiguousarray(blk[:, self.ch + self.kch:])
@@ -400,6 +406,28 @@ class Engine:
                 if self.kch:
                     self._writers["key"].write(key)
                 self._writers["out"].write(yout)
+
+    def _remember(self, blk):
+        buf = self._recent
+        cap = len(buf)
+        blk = blk[-cap:]
+        n = len(blk)
+        with self._recent_lock:
+            i = self._recent_pos % cap
+            first = min(n, cap - i)
+            buf[i:i + first] = blk[:first]
+            buf[:n - first] = blk[first:]
+            self._recent_pos += n
+
+    def recent_input(self, seconds):
+        """The last ``seconds`` (at most RECENT_SECONDS) of main and key input, as
+        ``(main, key or None)`` float32 arrays: for level-matched comparisons."""
+        with self._recent_lock:
+            cap = len(self._recent)
+            n = int(min(self._recent_pos, cap, round(seconds * self.fs)))
+            end = self._recent_pos % cap
+            data = self._recent[np.arange(end - n, end) % cap]
+        return data[:, :self.ch], (data[:, self.ch:] if self.kch else None)
 
     def _open_writers(self):
         from ..wavio import WavWriter
@@ -566,6 +594,7 @@ class Engine:
             "lookahead_samples": int(self.ud[cb.U_LATENCY]),
             "samplerate": self.fs, "blocksize": self.blocksize,
             "muted": bool(self.ud[cb.U_MUTE]), "bypassed": bool(self.ud[cb.U_BYPASS]),
+            "monitor": ("out", "key", "delta")[int(self.ud[cb.U_MONITOR])],
         }
         if self.stream is not None:
             snap["stream_latency_s"] = {"input": self.stream.input_latency,

@@ -106,7 +106,8 @@ class NativeStream:
         err = lib.Pa_IsFormatSupported(pin, self._out, float(samplerate))
         if err != 0:
             raise DeviceError(f"samplerate {samplerate:g} Hz with {in_channels} in / "
-                              f"{out_channels} out on {din['name']!r}: {self._text(err)}")
+                              f"{out_channels} out on {din['name']!r}: {self._text(err)} "
+                              f"(the device's default rate is {din['samplerate']:g} Hz)")
         self._cb = ffi.cast("PaStreamCallback *", callback_address)
         self._user = ffi.cast("void *", user_address)
         pp = ffi.new("PaStream**")
