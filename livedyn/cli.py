@@ -281,6 +281,52 @@ def _status_line(snap, t):
             f"{snap['flagged_blocks']}")
 
 
+def _run_with_status_lines(eng, server, main_src, args, seconds):
+    """One status line a second until the time is up, the input ends, or the stream fails."""
+    import time
+
+    t0 = time.monotonic()
+    next_line = 1.0
+    try:
+        while True:
+            time.sleep(0.05)
+            t = time.monotonic() - t0
+            if not eng.watch() or (server is not None and not server.alive()):
+                return eng.error or (f"the JACK server {server.name} stopped while the "
+                                     "stream ran (killed or crashed)")
+            if t >= next_line:
+                print(_status_line(eng.snapshot(), t), flush=True)
+                next_line += 1.0
+            if seconds is not None and t >= seconds:
+                return None
+            if main_src is not None and not args.loop and eng.source_finished:
+                return None
+    except KeyboardInterrupt:
+        print("stopping", flush=True)
+    return None
+
+
+def _run_with_console(eng, server, main_src, args, seconds):
+    """The full-screen console until the user quits (or the time is up)."""
+    from .console import run_console
+
+    def check():
+        if server is not None and not server.alive():
+            return f"the JACK server {server.name} stopped while the stream ran"
+        if main_src is not None and not args.loop and eng.source_finished:
+            return "the input has played to its end"
+        return None
+
+    try:
+        run_console(eng, title="livedyn run" + (" (headless)" if server else ""),
+                    check=check, quit_after=seconds)
+    except KeyboardInterrupt:
+        pass
+    if server is not None and not server.alive():
+        return f"the JACK server {server.name} stopped while the stream ran (killed or crashed)"
+    return eng.error
+
+
 def cmd_run(args):
     from .engine.jackserver import JackError
     from .engine.stream import DeviceError
@@ -314,16 +360,19 @@ def _cmd_run(args):
     setup = _setup_from(args)
     main_src = key_src = None
     seconds = args.seconds
+    interactive = not args.no_ui and sys.stdin.isatty() and sys.stdout.isatty()
     if args.key_demo:
         from . import demo
 
         length = seconds if seconds is not None else 16.0
         sc = demo.scenario(int(fs), seconds=max(length, 2.0))
+        if interactive and args.seconds is None:
+            args.loop = True  # at the console the scene repeats until you quit
         main_src = ArraySource(sc["music"], loop=args.loop)
         key_src = ArraySource(sc["narrator"], loop=args.loop)
         if setup.algorithm is None and setup.preset is None:
             setup.preset = "bed-under-narrator"
-        seconds = length if seconds is None else seconds
+        seconds = length if seconds is None and not args.loop else seconds
     if args.input_file:
         main_src = FileSource(args.input_file, loop=args.loop, samplerate=fs)
     if args.key_file:
@@ -367,26 +416,11 @@ def _cmd_run(args):
         raise
     print(f"; stream reports input {1000 * eng.stream.input_latency:.2f} ms, output "
           f"{1000 * eng.stream.output_latency:.2f} ms", flush=True)
-    t0 = time.monotonic()
-    next_line = 1.0
     failure = None
-    try:
-        while True:
-            time.sleep(0.05)
-            t = time.monotonic() - t0
-            if not eng.watch() or (server is not None and not server.alive()):
-                failure = eng.error or (f"the JACK server {server.name} stopped while the "
-                                        "stream ran (killed or crashed)")
-                break
-            if t >= next_line:
-                print(_status_line(eng.snapshot(), t), flush=True)
-                next_line += 1.0
-            if seconds is not None and t >= seconds:
-                break
-            if main_src is not None and not args.loop and eng.source_finished:
-                break
-    except KeyboardInterrupt:
-        print("stopping", flush=True)
+    if not args.no_ui and sys.stdin.isatty() and sys.stdout.isatty():
+        failure = _run_with_console(eng, server, main_src, args, seconds)
+    else:
+        failure = _run_with_status_lines(eng, server, main_src, args, seconds)
     snap = eng.snapshot()
     if failure:
         eng.error = failure
@@ -568,7 +602,9 @@ def build_parser():
     rn.add_argument("--stats-json", metavar="FILE", help="write the run's statistics here")
     rn.add_argument("--monitor", choices=["out", "key", "delta"], default="out",
                     help="what the outputs carry: processed, filtered key, or what was removed")
-    rn.add_argument("--no-ui", action="store_true", help="print one status line a second")
+    rn.add_argument("--no-ui", action="store_true",
+                    help="no console: print one status line a second (also when not on a "
+                         "terminal)")
     rn.add_argument("--headless", action="store_true",
                     help="start a JACK server with its dummy backend (no soundcard needed)")
     rn.add_argument("--loopback", action="store_true",
