@@ -319,7 +319,7 @@ def _run_with_console(eng, server, main_src, args, seconds):
 
     try:
         run_console(eng, title="livedyn run" + (" (headless)" if server else ""),
-                    check=check, quit_after=seconds)
+                    check=check, quit_after=seconds, refresh_hz=args.ui_refresh)
     except KeyboardInterrupt:
         pass
     if server is not None and not server.alive():
@@ -605,6 +605,8 @@ def build_parser():
     rn.add_argument("--no-ui", action="store_true",
                     help="no console: print one status line a second (also when not on a "
                          "terminal)")
+    rn.add_argument("--ui-refresh", type=float, default=20.0, metavar="HZ",
+                    help="console meter refresh rate (default 20)")
     rn.add_argument("--headless", action="store_true",
                     help="start a JACK server with its dummy backend (no soundcard needed)")
     rn.add_argument("--loopback", action="store_true",

@@ -205,13 +205,14 @@ def build_app(engine, input=None, output=None, title="livedyn console", check=No
     return app
 
 
-def run_console(engine, title="livedyn console", check=None, quit_after=None):
+def run_console(engine, title="livedyn console", check=None, quit_after=None, refresh_hz=20):
     """Run the console on the terminal until the user quits (or ``quit_after`` seconds).
 
     The engine keeps running: its owner stops it afterwards. ``check`` is called on every
     meter refresh and returns None or a one-line problem to show (see ConsoleModel).
     Returns the model (its state at quit)."""
-    app = build_app(engine, title=title, check=check, quit_after=quit_after)
+    app = build_app(engine, title=title, check=check, quit_after=quit_after,
+                    refresh_hz=refresh_hz)
     app.run()
     return app.console_model
 
