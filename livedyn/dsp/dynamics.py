@@ -87,23 +87,6 @@ def next_delay(st, d_new, fs):
 
 
 @nb.njit(**JIT)
-def read_delayed(ring, w, c, d_cur, d_old, xf, xf_len):
-    """The delayed main sample of channel c, crossfading from d_old while xf > 0."""
-    n = ring.shape[0]
-    i = w - d_cur
-    if i < 0:
-        i += n
-    v = ring[i, c]
-    if xf > 0.0:
-        j = w - d_old
-        if j < 0:
-            j += n
-        wgt = 1.0 - xf / xf_len
-        v = wgt * v + (1.0 - wgt) * ring[j, c]
-    return v
-
-
-@nb.njit(**JIT)
 def dynamics_block(x, key, out, p, st, ring, tr):
     """Process one block. See livedyn.dsp.layout for the argument contract."""
     frames = x.shape[0]
