@@ -50,7 +50,9 @@ P_TRUE_PEAK = 24
 P_SAMPLERATE = 25  # written by the Processor, not a user control
 P_BYPASS = 26  # reserved for the engine
 P_LAW = 27  # gain law of the dynamics kernel, written by the Processor
-NPARAM = 32
+P_USER_CURVE = 28  # address of a user gain curve (a compiled cfunc), written by the Processor
+USER_SLOT0 = 32  # the parameters a user algorithm declares itself live in slots 32..63
+NPARAM = 64
 
 # Choice indices.
 DETECTOR_PEAK = 0
@@ -71,6 +73,7 @@ LAW_COMPRESSOR = 0
 LAW_EXPANDER = 1
 LAW_GATE = 2
 LAW_DUCKER = 3
+LAW_USER = 4  # a user-written gain curve, called through P_USER_CURVE
 
 # Glide time constant of "sample"-updated parameters, ms (a choice of ours: fast enough to feel
 # immediate, slow enough that a 20 dB threshold jump makes no audible click).

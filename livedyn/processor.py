@@ -14,7 +14,7 @@ from . import algorithms
 from .dsp import layout as L
 from .params import (
     KEY_EXTERNAL, LINK_MEAN, LINK_NONE, MAX_LOOKAHEAD_MS, NPARAM, P_KEY, P_LAW, P_LINK,
-    P_LOOKAHEAD, P_SAMPLERATE, P_TOPOLOGY, P_TRUE_PEAK, TOPOLOGY_FEEDBACK, ALL, ParamError,
+    P_LOOKAHEAD, P_SAMPLERATE, P_TOPOLOGY, P_TRUE_PEAK, P_USER_CURVE, TOPOLOGY_FEEDBACK, ALL, ParamError,
 )
 
 MAX_CHANNELS = 8
@@ -59,6 +59,8 @@ class Processor:
             self.p[prm.slot] = prm.default
         self.p[P_SAMPLERATE] = samplerate
         self.p[P_LAW] = self.algorithm.law
+        if self.algorithm.user_curve is not None:
+            self.p[P_USER_CURVE] = float(self.algorithm.user_curve.address)
         if self.algorithm.needs_key and self.key_channels == 0 and "key" in self.schema:
             self.p[self.schema["key"].slot] = 0.0  # no key input: fall back to the main input
         self._check_combination(self.p)

@@ -17,6 +17,10 @@ def get(name) -> Algorithm:
     """The built-in algorithm called ``name``."""
     if isinstance(name, Algorithm):
         return name
+    from .user import is_user_file, load
+
+    if is_user_file(name):
+        return load(name)
     try:
         return BUILTINS[str(name).strip().lower()]
     except KeyError:

@@ -18,6 +18,8 @@ class Algorithm:
     kind: str  # which fused kernel runs it: "dynamics" or "limiter"
     law: int  # gain law for the dynamics kernel (see livedyn.dsp.gaincurve)
     needs_key: bool = False
+    source: object = None  # a user algorithm's file
+    user_curve: object = None  # its compiled gain curve (kept alive here)
 
     def kernel(self):
         from ..dsp import kernel_for

@@ -22,12 +22,14 @@ import numba as nb
 
 from ..params import (
     BALLISTICS_DECOUPLED, DELAY_XFADE_MS, DETECTOR_RMS, DOMAIN_LINEAR, GLIDE_MS, KEY_EXTERNAL,
-    LAW_COMPRESSOR, LAW_DUCKER, LAW_EXPANDER, LAW_GATE, LINK_MEAN, LINK_NONE, P_ATTACK,
+    LAW_COMPRESSOR, LAW_DUCKER, LAW_EXPANDER, LAW_GATE, LAW_USER, LINK_MEAN, LINK_NONE, P_ATTACK,
     P_AUTOMAKEUP, P_BALLISTICS, P_CEILING, P_DETECTOR, P_DOMAIN, P_HOLD, P_HYSTERESIS, P_KEY,
     P_KEY_BPF, P_KEY_HPF, P_KEY_LPF, P_KEY_Q, P_KNEE, P_LAW, P_LINK, P_LOOKAHEAD, P_MAKEUP,
     P_MIX, P_RANGE, P_RATIO, P_RELEASE, P_RMS_TIME, P_SAMPLERATE, P_THRESHOLD, P_TOPOLOGY,
+    P_USER_CURVE,
     TOPOLOGY_FEEDBACK,
 )
+from .calls import call_curve
 from .layout import (
     C_BPF, C_HPF, C_LPF, R_BPZ, R_ENV, R_ENV1, R_FB, R_GAIN, R_HOLD, R_HPZ, R_LPZ, R_MEAS, R_MS,
     R_OPEN, R_Y, R_Y1, S_AUTOMAKEUP_DB, S_CEIL, S_DCUR, S_DOLD, S_FRAMES, S_GR_MAX, S_HYST,
@@ -102,10 +104,10 @@ def dynamics_block(x, key, out, p, st, ring, tr):
     g_glide = 1.0 - one_pole_coeff(GLIDE_MS, fs)
     hold_n = math.floor(p[P_HOLD] * fs / 1000.0 + 0.5)
     rms = int(p[P_DETECTOR]) == DETECTOR_RMS
-    decoupled = int(p[P_BALLISTICS]) == BALLISTICS_DECOUPLED and (
-        law == LAW_COMPRESSOR or law == LAW_DUCKER)
-    linear = int(p[P_DOMAIN]) == DOMAIN_LINEAR and law == LAW_COMPRESSOR
-    feedback = int(p[P_TOPOLOGY]) == TOPOLOGY_FEEDBACK and law == LAW_COMPRESSOR
+    comp_like = law == LAW_COMPRESSOR or law == LAW_USER
+    decoupled = int(p[P_BALLISTICS]) == BALLISTICS_DECOUPLED and (comp_like or law == LAW_DUCKER)
+    linear = int(p[P_DOMAIN]) == DOMAIN_LINEAR and comp_like
+    feedback = int(p[P_TOPOLOGY]) == TOPOLOGY_FEEDBACK and comp_like
     external = int(p[P_KEY]) == KEY_EXTERNAL and not feedback
     link = int(p[P_LINK])
     automakeup = p[P_AUTOMAKEUP] > 0.5 and law == LAW_COMPRESSOR
@@ -278,6 +280,8 @@ def dynamics_block(x, key, out, p, st, ring, tr):
                 gc = compressor_gain(x_db, thr, slope, knee)
             elif law == LAW_DUCKER:
                 gc = ducker_gain(x_db, thr, slope, knee, rng)
+            elif law == LAW_USER:
+                gc = call_curve(p[P_USER_CURVE], x_db, p)
             else:
                 opened = st[R_OPEN, g]
                 if x_db >= thr:

@@ -1,0 +1,107 @@
+"""User algorithm files: a gain curve in a plain Python file runs inside the built-in kernel."""
+import subprocess
+import sys
+import textwrap
+
+import numpy as np
+import pytest
+
+import livedyn
+from livedyn.algorithms.user import UserAlgorithmError, load
+
+PLAIN = '''
+"""Hard-knee compressor curve, written as a user file."""
+NAME = "plain-comp"
+PARAMS = ["threshold", "ratio", "attack", "release", "makeup"]
+
+
+def gain_curve(level_db, p):
+    over = level_db - p[P.threshold]
+    if over > 0.0:
+        return -(1.0 - 1.0 / p[P.ratio]) * over
+    return 0.0
+'''
+
+OWN = '''
+"""A compressor whose ratio grows with level."""
+PARAMS = ["threshold", "attack", "release",
+          Param("growth", "dB", 1, 40, 12, help="overshoot at which the slope is one half")]
+
+
+def gain_curve(level_db, p):
+    over = level_db - p[P.threshold]
+    if over <= 0.0:
+        return 0.0
+    return -over * over / (over + p[P.growth])
+'''
+
+
+def write(tmp_path, text, name="algo.py"):
+    f = tmp_path / name
+    f.write_text(textwrap.dedent(text))
+    return f
+
+
+def noise(frames=24000, ch=2, seed=0):
+    rng = np.random.default_rng(seed)
+    return (0.5 * rng.standard_normal((frames, ch))).astype(np.float32)
+
+
+def test_a_user_curve_equal_to_the_builtin_gives_the_same_output(tmp_path):
+    # the same equation ([GMR2012] eq. 3) written by a user, run in the same kernel: identical
+    f = write(tmp_path, PLAIN)
+    x = noise()
+    a = livedyn.Processor(str(f), 48000, 2, threshold=-24, ratio=4, attack=5, release=80)
+    b = livedyn.Processor("compressor", 48000, 2, threshold=-24, ratio=4, attack=5,
+                          release=80, knee=0)
+    np.testing.assert_array_equal(a.process(x), b.process(x))
+    assert a.algorithm.name == "plain-comp"
+
+
+def test_own_parameters_get_slots_and_are_validated(tmp_path):
+    f = write(tmp_path, OWN)
+    p = livedyn.Processor(str(f), 48000, 1, threshold=-30, growth=6, attack=0)
+    assert p.get("growth") == 6
+    with pytest.raises(livedyn.params.ParamError, match="growth = 80 dB: out of range"):
+        p.set("growth", 80)
+    # steady square wave at -10 dBFS: 20 dB over threshold -> gain -20*20/(20+6) dB
+    n = np.arange(4800)
+    x = np.where((n // 48) % 2 == 0, 10 ** (-10 / 20), -(10 ** (-10 / 20)))[:, None]
+    y = p.process(x.astype(np.float32))
+    got = 20 * np.log10(abs(float(y[-1, 0]))) + 10
+    assert got == pytest.approx(-20 * 20 / 26, abs=1e-3)
+
+
+@pytest.mark.parametrize("text,words", [
+    ("PARAMS = ['threshold']\ndef gain_curve(x, p)\n    return 0.0\n", ["algo.py:2", "syntax"]),
+    ("PARAMS = ['threshold']\n", ["no gain_curve"]),
+    ("def gain_curve(x, p):\n    return 0.0\n", ["no PARAMS"]),
+    ("PARAMS = ['loudness']\ndef gain_curve(x, p):\n    return 0.0\n", ["unknown parameter"]),
+    ("PARAMS = ['threshold']\ndef gain_curve(x, p):\n    return {'a': x}\n",
+     ["does not compile"]),
+    ("PARAMS = ['threshold']\nraise RuntimeError('broken on purpose')\n",
+     ["algo.py:2", "broken on purpose"]),
+])
+def test_broken_files_give_one_line_naming_the_file(tmp_path, text, words):
+    f = write(tmp_path, text)
+    with pytest.raises(UserAlgorithmError) as e:
+        load(f)
+    msg = str(e.value)
+    assert "\n" not in msg
+    for w in words:
+        assert w in msg, msg
+
+
+def test_render_accepts_an_algorithm_file(tmp_path):
+    import soundfile as sf
+
+    f = write(tmp_path, PLAIN)
+    x = noise(9600)
+    sf.write(tmp_path / "in.wav", x, 48000, subtype="FLOAT")
+    r = subprocess.run([sys.executable, "-m", "livedyn.cli", "render", str(tmp_path / "in.wav"),
+                        "--out", str(tmp_path / "out.wav"), "--algorithm", str(f), "--set",
+                        "threshold=-30"], capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    y, _ = sf.read(tmp_path / "out.wav", dtype="float32")
+    ref = livedyn.Processor("compressor", 48000, 2, threshold=-30, knee=0).process(x)
+    np.testing.assert_array_equal(y, ref)
