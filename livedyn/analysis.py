@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .dsp import stages
-from .params import LAW_COMPRESSOR, LAW_DUCKER, LAW_EXPANDER, LAW_GATE, ratio_to_slope
+from .params import LAW_COMPRESSOR, LAW_DUCKER, LAW_EXPANDER, LAW_GATE, LAW_USER, ratio_to_slope
 
 
 def _db(a):
@@ -56,6 +56,12 @@ def theory_output_db(proc, level_db):
         g = stages.expander_gain(level_db, thr, slope, knee, v["range"])
     elif law == LAW_GATE:
         g = 0.0 if level_db >= thr else -v["range"]
+    elif law == LAW_USER:
+        import ctypes
+
+        p = proc.p
+        g = proc.algorithm.user_curve.ctypes(float(level_db),
+                                             p.ctypes.data_as(ctypes.POINTER(ctypes.c_double)))
     else:
         g = stages.ducker_gain(level_db, thr, slope, knee, v["range"])
     out = level_db + g + makeup

@@ -105,3 +105,19 @@ def test_render_accepts_an_algorithm_file(tmp_path):
     y, _ = sf.read(tmp_path / "out.wav", dtype="float32")
     ref = livedyn.Processor("compressor", 48000, 2, threshold=-30, knee=0).process(x)
     np.testing.assert_array_equal(y, ref)
+
+
+def test_measure_curve_of_a_user_file_matches_its_own_equation(tmp_path):
+    # the square-wave sweep (exact detected level) against the curve the file itself defines
+    f = write(tmp_path, OWN)
+    r = subprocess.run([sys.executable, "-m", "livedyn.cli", "measure", "curve", "--algorithm",
+                        str(f), "--signal", "square"], capture_output=True, text=True,
+                       timeout=300)
+    assert r.returncode == 0, r.stderr
+    line = [ln for ln in r.stdout.splitlines() if ln.startswith("largest square-wave error")]
+    assert line and float(line[0].split(":")[1].split()[0]) < 0.01
+    rows = [ln.split() for ln in r.stdout.splitlines() if ln.strip().endswith(tuple("0123456789"))
+            and "square" in ln]
+    # threshold at its default, -20 dBFS: at 0 dBFS the level is 20 dB over: -20*20/(20+12) dB
+    top = [row for row in rows if float(row[0]) == 0.0][0]
+    assert float(top[3]) == __import__("pytest").approx(-20 * 20 / 32, abs=0.01)
