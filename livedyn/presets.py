@@ -413,7 +413,13 @@ def _from_doc(doc: dict, path: Path, text: str) -> Preset:
                        f"file, relative to this preset's folder", None, "algorithm_file")
         algorithm_file = (path.parent / Path(af.strip()).expanduser()).resolve()
         alg_name = algorithm_file.stem
-        schema = Schema(dict(ALL))
+        # the file's own schema when it loads (its own parameters included); otherwise check
+        # against livedyn's parameters and leave the file's errors to whoever runs it
+        try:
+            user = algorithms.get(str(algorithm_file))
+            schema, alg_name = user.schema, user.name
+        except ParamError:
+            schema = Schema(dict(ALL))
 
     # -- description
     desc = doc.get("description", "")

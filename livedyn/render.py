@@ -64,13 +64,18 @@ def build_processor(setup: Setup, samplerate, channels, key_channels=0,
     algo = setup.algorithm
     if preset is not None:
         if preset.algorithm_file is not None:
-            raise RenderError(f"{preset.source}: algorithm_file presets need the user-algorithm "
-                              "loader, which this version does not have yet")
-        if algo and algorithms.get(algo).name != preset.algorithm:
-            raise RenderError(
-                f"--algorithm {algo} conflicts with preset {setup.preset} "
-                f"(algorithm {preset.algorithm}); give one or make them agree")
-        algo = preset.algorithm
+            user = algorithms.get(str(preset.algorithm_file))
+            preset.checked(user.schema)
+            if algo and Path(algo).resolve() != Path(preset.algorithm_file).resolve():
+                raise RenderError(f"--algorithm {algo} conflicts with preset {setup.preset} "
+                                  f"(algorithm_file {preset.algorithm_file}); give one")
+            algo = str(preset.algorithm_file)
+        else:
+            if algo and algorithms.get(algo).name != preset.algorithm:
+                raise RenderError(
+                    f"--algorithm {algo} conflicts with preset {setup.preset} "
+                    f"(algorithm {preset.algorithm}); give one or make them agree")
+            algo = preset.algorithm
     algo = algo or "compressor"
     proc = Processor(algo, samplerate, channels, key_channels=key_channels)
     if key_channels and "key" not in proc.schema:

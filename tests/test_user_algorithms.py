@@ -121,3 +121,17 @@ def test_measure_curve_of_a_user_file_matches_its_own_equation(tmp_path):
     # threshold at its default, -20 dBFS: at 0 dBFS the level is 20 dB over: -20*20/(20+12) dB
     top = [row for row in rows if float(row[0]) == 0.0][0]
     assert float(top[3]) == __import__("pytest").approx(-20 * 20 / 32, abs=0.01)
+
+
+def test_a_preset_can_name_an_algorithm_file(tmp_path):
+    from livedyn.render import Setup, build_processor
+
+    write(tmp_path, OWN, "grow.py")
+    (tmp_path / "mine.toml").write_text(
+        'preset_format = 1\nalgorithm_file = "grow.py"\n[params]\nthreshold = -36\ngrowth = 8\n')
+    p = build_processor(Setup(preset=str(tmp_path / "mine.toml")), 48000, 2)
+    assert p.get("threshold") == -36 and p.get("growth") == 8
+    (tmp_path / "bad.toml").write_text(
+        'preset_format = 1\nalgorithm_file = "grow.py"\n[params]\ngrowth = 99\n')
+    with pytest.raises(livedyn.params.ParamError, match="growth = 99 dB: out of range"):
+        build_processor(Setup(preset=str(tmp_path / "bad.toml")), 48000, 2)
