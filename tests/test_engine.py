@@ -746,9 +746,14 @@ def test_native_callback_shrugs_off_interpreter_load_a_python_callback_does_not(
     eng = Engine(proc, BS, main_source=ArraySource(x, loop=True))
     with _stopped(eng.start()):
         time.sleep(0.5)
+        # the machine's own noise floor, with no load in the process (a shared VM has late
+        # wake-ups of its own: cyclictest on this machine saw up to 6 ms)
+        _, (a0, a1), dur0 = _window(eng, seconds / 2)
         with _Load() as load:
             d, (b0, b1), dur = _window(eng, seconds)
         assert eng.watch(), eng.error
+    el0, iv0, fl0 = _ring_window(eng, a0, a1)
+    idle, _ = _bad_blocks(_late_per_block(el0, iv0), fl0, a1 - a0, dur0)
     el, iv, fl = _ring_window(eng, b0, b1)
     n_late = _late_per_block(el, iv)
     native, native_lost = _bad_blocks(n_late, fl, b1 - b0, dur)
@@ -795,8 +800,14 @@ def test_native_callback_shrugs_off_interpreter_load_a_python_callback_does_not(
     print(f"late-or-flagged blocks: native {n_lf}, python {p_lf}; ratio python/native bad "
           f"blocks {python / max(native, 1):.1f} (issue target: native <= 2 bad blocks; "
           f"measured {native})")
-    # A block that never came is the worst kind of late one: the ratio counts both.
-    assert python >= 20 * max(native, 1), (native, python)
+    # A block that never came is the worst kind of late one: the ratio counts both. What the
+    # load costs the native callback is its bad blocks beyond the machine's own noise floor
+    # (the idle window, scaled to the same length); the Python callback must lose at least 20
+    # times that, which also shows that the load was real.
+    excess = max(native - idle * dur / dur0, 1.0)
+    print(f"native bad blocks: {native} under load, {idle} in {dur0:.1f} s without; "
+          f"load-attributable {excess:.0f}")
+    assert python >= 20 * excess, (native, idle, python)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -135,3 +135,31 @@ def test_a_preset_can_name_an_algorithm_file(tmp_path):
         'preset_format = 1\nalgorithm_file = "grow.py"\n[params]\ngrowth = 99\n')
     with pytest.raises(livedyn.params.ParamError, match="growth = 99 dB: out of range"):
         build_processor(Setup(preset=str(tmp_path / "bad.toml")), 48000, 2)
+
+
+def test_a_user_file_live_equals_its_offline_render(tmp_path, jack_server):
+    # the same file in the live callback (headless server) and offline, block by block
+    import time
+
+    import soundfile as sf
+
+    from livedyn.engine.engine import ArraySource, Engine
+
+    f = write(tmp_path, OWN)
+    x = noise(48000)
+    proc = livedyn.Processor(str(f), 48000, 2, threshold=-30, attack=2)
+    ref = livedyn.Processor(str(f), 48000, 2, threshold=-30, attack=2)
+    eng = Engine(proc, 64, main_source=ArraySource(x), record_dir=tmp_path / "rec",
+                 fade_in_ms=0.0, meters=False)
+    eng.start()
+    t_end = time.monotonic() + 10
+    while not eng.source_finished and time.monotonic() < t_end:
+        time.sleep(0.02)
+    eng.stop()
+    y, _ = sf.read(tmp_path / "rec" / "out.wav", dtype="float32")
+    m, _ = sf.read(tmp_path / "rec" / "main.wav", dtype="float32")
+    n = len(x) - 64 * 40  # well before the stop fade
+    off = np.concatenate([ref.process(m[i:i + 64]) for i in range(0, n, 64)])
+    off = np.clip(off, -10 ** (-1 / 20), 10 ** (-1 / 20))  # the engine's last stage: -1 dBFS
+    np.testing.assert_array_equal(y[:n], off[:n])
+    assert np.abs(y[:n]).max() > 0.01
