@@ -679,15 +679,13 @@ def test_canary_overruns_are_all_counted_as_late(jack_server):
     assert np.all(el[canary] >= spin) and spin > PERIOD_NS
     # the counter agrees block by block with the per-block record of the elapsed-time ring
     assert late == int(_late_per_block(el, iv).sum())
-    # and, beyond the machine's own rate of late blocks, it counted the injected ones. The
-    # tolerance (common practice, no source) is 3 standard deviations of a Poisson count at the
-    # control rate, plus a quarter of the injected count for the machine's bursts and for late
-    # wake-ups that the overrunning blocks cause; it stays well below the injected count, so a
-    # counter that missed the overruns fails here too.
-    expected = injected + late_base * dur / base_s
-    tol = 3 * math.sqrt(max(late_base * dur / base_s, 1)) + 0.25 * injected
-    assert tol < 0.6 * injected
-    assert abs(late - expected) <= tol, (late, expected, tol)
+    # every injected block is among the blocks counted late, one for one; the others counted
+    # late are the machine's own (the control windows show its rate), never a double count
+    per_block = _late_per_block(el, iv)
+    assert np.all(per_block[canary]), "an injected overrun was not counted"
+    assert late >= injected
+    print(f"late beyond the injected: {late - injected} in {dur:.2f} s; the controls' rate "
+          f"predicts {late_base * dur / base_s:.1f}")
 
 
 # ---------------------------------------------------------------------------------------------
