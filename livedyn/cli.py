@@ -351,6 +351,9 @@ def _cmd_run(args):
         raise CliError(f"--seconds {args.seconds:g}: expected a duration above 0")
     if not 16 <= args.blocksize <= 8192:
         raise CliError(f"--blocksize {args.blocksize}: expected 16 to 8192 frames")
+    if args.headless and (args.device or args.input_device or args.output_device):
+        raise CliError("--headless runs on a JACK server of its own: leave out --device, "
+                       "--input-device and --output-device, or leave out --headless")
     if args.loopback and not args.headless:
         raise CliError("--loopback needs --headless (on hardware, connect a cable)")
     fs = args.samplerate

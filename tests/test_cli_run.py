@@ -135,3 +135,13 @@ def test_devices_lists_the_running_server_with_its_channels(jack_server, tmp_pat
     assert system, r.stdout
     # index, name, host API (two words), in, out, rate
     assert system[0][-3:] == ["3", "5", "48000"], r.stdout
+
+
+def test_headless_with_a_device_is_one_line_error(capsys):
+    # --headless picks the JACK server's own device; a --device beside it would be ignored
+    from livedyn import cli
+
+    rc = cli.main(["run", "--headless", "--device", "USB", "--seconds", "1", "--no-ui"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert rc == 2
+    assert len(err) == 1 and err[0].startswith("livedyn: error: --headless")
