@@ -143,19 +143,9 @@ DUCK_CHANGES = [(0.7, "threshold", -45.0), (1.0, "range", 20.0), (1.3, "release"
                 (1.6, "threshold", -25.0), (1.9, "range", 6.0), (2.2, "release", 40.0)]
 
 
-@pytest.mark.parametrize("algorithm", ["compressor", "ducker"])
-def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_path, algorithm):
-    rng = np.random.default_rng(7)
-    seconds = 2.6
-    main = _bursts(rng, seconds, 2)
-    if algorithm == "compressor":
-        settings, changes, key, kch = COMP_SETTINGS, COMP_CHANGES, None, 0
-    else:
-        settings, changes, kch = DUCK_SETTINGS, DUCK_CHANGES, 1
-        gate = np.repeat(rng.uniform(0, 1, 26) > 0.5, int(0.1 * FS))[:len(main)]
-        key = (_tone(seconds, 700, 0.3)[:, 0] * gate)[:, None].astype(np.float32)
+def _live_run(rec, algorithm, settings, changes, main, key, kch):
+    """One live run of the processor on the sources, recorded, with changes from a thread."""
     proc = livedyn.Processor(algorithm, FS, 2, kch, **settings)
-    rec = tmp_path / "live"
     eng = Engine(proc, BS, main_source=ArraySource(main),
                  key_source=ArraySource(key) if key is not None else None, record_dir=rec)
     # The kernel behind the callback's one indirect call (see test 2) is one of the job cfuncs.
@@ -176,8 +166,31 @@ def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_pat
         th.join()
         _run_to_end(eng)
         snap = eng.snapshot()
-    assert snap["tap_dropped_blocks"] == 0  # the recording is complete
+    return proc, eng, snap, seqs, rec
 
+
+@pytest.mark.parametrize("algorithm", ["compressor", "ducker"])
+def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_path, algorithm):
+    rng = np.random.default_rng(7)
+    seconds = 2.6
+    main = _bursts(rng, seconds, 2)
+    if algorithm == "compressor":
+        settings, changes, key, kch = COMP_SETTINGS, COMP_CHANGES, None, 0
+    else:
+        settings, changes, kch = DUCK_SETTINGS, DUCK_CHANGES, 1
+        gate = np.repeat(rng.uniform(0, 1, 26) > 0.5, int(0.1 * FS))[:len(main)]
+        key = (_tone(seconds, 700, 0.3)[:, 0] * gate)[:, None].astype(np.float32)
+    for attempt in range(3):
+        # A run in which the machine starved the feeder or the recorder (input not as the
+        # source, or tap blocks dropped) says nothing about the processing: run it again.
+        proc, eng, snap, seqs, rec = _live_run(tmp_path / f"live{attempt}", algorithm, settings,
+                                              changes, main, key, kch)
+        xin = _wav(rec / "main.wav")
+        if snap["tap_dropped_blocks"] == 0 and np.array_equal(xin[:len(main)], main):
+            break
+        print(f"attempt {attempt}: the machine starved the stream's helpers; running again")
+    else:
+        pytest.fail("in 3 runs the machine never fed the stream without gaps")
     # the recorded automation holds every change at the frame where the callback applied it
     auto = livedyn.automation.Automation.load(rec / "automation.txt", proc.schema)
     recorded = [(n, v) for f, n, v in auto if f > 0]
@@ -192,7 +205,7 @@ def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_pat
            key_path=(rec / "key.wav") if key is not None else None,
            automation_path=rec / "automation.txt", blocksize=BS, keep_latency=True,
            safety_ceiling_db=-1.0)
-    live, off, xin = _wav(rec / "out.wav"), _wav(tmp_path / "offline.wav"), _wav(rec / "main.wav")
+    live, off = _wav(rec / "out.wav"), _wav(tmp_path / "offline.wav")
     assert live.shape == off.shape == xin.shape and len(live) >= len(main)
     assert np.array_equal(xin[:len(main)], main)  # the callback saw the source unchanged
     assert np.array_equal(live[FADE:], off[FADE:])
