@@ -339,7 +339,6 @@ def cmd_run(args):
 
 def _cmd_run(args):
     import os
-    import time
 
     from .engine import stream as st
     from .engine.engine import ArraySource, Engine, FileSource

@@ -224,8 +224,6 @@ class Engine:
         self.tap_width = 2 * self.ch + self.kch
         self.tap_ring = _ring(int(TAP_SECONDS * self.fs), self.tap_width)
 
-        from ..dsp import warm  # noqa: F401  (kernels are compiled by Processor already)
-
         kernel = cb.job_limiter if processor.algorithm.kind == "limiter" else cb.job_dynamics
         self._kernel_cfunc = kernel
         ud = self.ud
