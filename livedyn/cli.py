@@ -294,6 +294,8 @@ def _run_with_status_lines(eng, server, main_src, args, seconds):
             if not eng.watch() or (server is not None and not server.alive()):
                 return eng.error or (f"the JACK server {server.name} stopped while the "
                                      "stream ran (killed or crashed)")
+            for level, text in eng.take_notices():
+                print(f"{t:6.1f} s  {level}: {text}", flush=True)
             if t >= next_line:
                 print(_status_line(eng.snapshot(), t), flush=True)
                 next_line += 1.0
@@ -355,6 +357,9 @@ def _cmd_run(args):
                        "--input-device and --output-device, or leave out --headless")
     if args.loopback and not args.headless:
         raise CliError("--loopback needs --headless (on hardware, connect a cable)")
+    if args.watch and not (args.algorithm and str(args.algorithm).endswith(".py")) and \
+            not args.preset:
+        raise CliError("--watch reloads an algorithm file: give --algorithm FILE.py")
     fs = args.samplerate
     main_in = _channel_list(args.main_inputs, "--main-inputs")
     key_in = _channel_list(args.key_inputs, "--key-inputs")
@@ -382,6 +387,10 @@ def _cmd_run(args):
     ch = main_src.channels if main_src is not None else (len(main_in) if main_in else 2)
     kch = key_src.channels if key_src is not None else (len(key_in) if key_in else 0)
     proc = build_processor(setup, fs, ch, kch)
+    if args.watch and proc.algorithm.source is None:
+        raise CliError(f"--watch: {proc.algorithm.name} is built in; --watch reloads an "
+                       "algorithm file (--algorithm FILE.py)")
+    _print_report(proc.algorithm)
     if args.headless and seconds is None and main_src is None:
         seconds = 10.0
 
@@ -418,12 +427,23 @@ def _cmd_run(args):
         raise
     print(f"; stream reports input {1000 * eng.stream.input_latency:.2f} ms, output "
           f"{1000 * eng.stream.output_latency:.2f} ms", flush=True)
+    watcher = None
+    if args.watch:
+        from .engine.watch import FileWatcher
+
+        watcher = FileWatcher(eng, proc.algorithm.source).start()
+        print(f"watching {proc.algorithm.source}: save it to hear the new version", flush=True)
     failure = None
     if not args.no_ui and sys.stdin.isatty() and sys.stdout.isatty():
         failure = _run_with_console(eng, server, main_src, args, seconds)
     else:
         failure = _run_with_status_lines(eng, server, main_src, args, seconds)
+    if watcher is not None:
+        watcher.stop()
     snap = eng.snapshot()
+    if watcher is not None:
+        snap["watch"] = {"versions_swapped": watcher.versions, "failed_loads": watcher.failures,
+                         "swaps": eng.swap_log}
     if failure:
         eng.error = failure
     eng.stop()
@@ -449,6 +469,37 @@ def _cmd_run(args):
     return 0
 
 
+def _print_report(alg):
+    """A user algorithm's load-time check report, indented under its name."""
+    if alg.source is None:
+        return
+    print(f"{alg.source}: checks passed")
+    for line in alg.report:
+        print(f"  {line}")
+
+
+def cmd_check(args):
+    from .algorithms.user import UserAlgorithmError, load
+
+    try:
+        alg = load(args.file)
+    except UserAlgorithmError as e:
+        if args.full and e.detail:
+            print(e.detail, file=sys.stderr)
+        raise
+    _print_report(alg)
+    return 0
+
+
+def cmd_new_algorithm(args):
+    from .algorithms.template import write_template
+
+    path = write_template(args.name, stage=args.stage)
+    print(f"wrote {path}: try it with  livedyn run --headless --key-demo --algorithm {path} "
+          f"--watch")
+    return 0
+
+
 def _bench():
     """The bench/ package of the source tree (it is not installed with livedyn)."""
     root = Path(__file__).resolve().parent.parent
@@ -468,7 +519,14 @@ def cmd_bench(args):
 
     what = args.what
     result = {}
-    if what in ("kernels", "all"):
+    user_file = str(args.algorithm).endswith(".py")
+    if user_file and what in ("kernels", "all"):
+        from bench.user import format_user, run_user
+
+        result["kernels"] = run_user(args.algorithm, quick=args.quick,
+                                     samplerate=int(args.samplerate))
+        print(format_user(result["kernels"]), flush=True)
+    elif what in ("kernels", "all"):
         from bench.kernels import machine_info, report
         from bench.sweep import run_sweep
 
@@ -500,7 +558,7 @@ def cmd_bench(args):
             print("(no plots: install the plot extra, pip install 'livedyn[plot]')")
         else:
             Path(args.plot).mkdir(parents=True, exist_ok=True)
-            if "kernels" in result:
+            if "kernels" in result and not user_file:
                 plots.append(Path(args.plot) / "kernel-cost.png")
                 bp.plot_kernel_cost(result["kernels"]["rows"], plots[-1])
             runs = result.get("stream")
@@ -525,7 +583,8 @@ def cmd_bench(args):
 
 def _add_setup(p):
     p.add_argument("--algorithm", metavar="NAME",
-                   help="compressor, limiter, expander, gate or ducker")
+                   help="compressor, limiter, expander, gate, ducker, or an algorithm file "
+                        "FILE.py (see livedyn new-algorithm)")
     p.add_argument("--preset", metavar="NAME_OR_FILE", help="a shipped preset name or a .toml")
     p.add_argument("--set", metavar="NAME=VALUE", action="append",
                    help="set a parameter, e.g. --set threshold=-18 --set ratio=4:1 (repeatable)")
@@ -613,6 +672,8 @@ def build_parser():
                     help="start a JACK server with its dummy backend (no soundcard needed)")
     rn.add_argument("--loopback", action="store_true",
                     help="headless: patch the outputs back to the inputs (latency checks)")
+    rn.add_argument("--watch", action="store_true",
+                    help="reload the algorithm file when it changes, without a dropout")
     rn.add_argument("--realtime", action="store_true",
                     help="ask for real-time scheduling where the system allows it")
     rn.set_defaults(func=cmd_run)
@@ -622,7 +683,9 @@ def build_parser():
                                     "latency (headless JACK server unless --device is given).")
     bn.add_argument("what", choices=["kernels", "stream", "latency", "all"])
     bn.add_argument("--quick", action="store_true", help="short runs for a smoke test")
-    bn.add_argument("--algorithm", default="compressor")
+    bn.add_argument("--algorithm", default="compressor",
+                    help="built-in name or FILE.py: kernels then times the file beside the "
+                         "built-in compressor")
     bn.add_argument("--instances", type=int, default=1, metavar="K")
     bn.add_argument("--find-max", action="store_true",
                     help="raise K until blocks are late or the callback passes 70 %% load")
@@ -638,6 +701,20 @@ def build_parser():
     bn.add_argument("--json", metavar="FILE")
     bn.add_argument("--plot", metavar="DIR", help="write PNG plots here (plot extra)")
     bn.set_defaults(func=cmd_bench)
+
+    ck = sub.add_parser("check", help="compile and check an algorithm file, print the report",
+                        description="Compile an algorithm file and run livedyn's load-time "
+                                    "checks on it.")
+    ck.add_argument("file", metavar="FILE.py")
+    ck.add_argument("--full", action="store_true", help="print the compiler's whole message")
+    ck.set_defaults(func=cmd_check)
+
+    na = sub.add_parser("new-algorithm", help="write a commented starting algorithm file",
+                        description="Write NAME.py, a commented algorithm file to edit.")
+    na.add_argument("name", metavar="NAME", help="file name (NAME.py) or path")
+    na.add_argument("--stage", choices=["gain_curve", "detector", "smoother", "kernel"],
+                    default="gain_curve", help="which stage the file starts with")
+    na.set_defaults(func=cmd_new_algorithm)
 
     dv = sub.add_parser("devices", help="list audio devices", description="List audio devices.")
     dv.set_defaults(func=cmd_devices)

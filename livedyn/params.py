@@ -51,6 +51,8 @@ P_SAMPLERATE = 25  # written by the Processor, not a user control
 P_BYPASS = 26  # reserved for the engine
 P_LAW = 27  # gain law of the dynamics kernel, written by the Processor
 P_USER_CURVE = 28  # address of a user gain curve (a compiled cfunc), written by the Processor
+P_USER_DETECTOR = 29  # address of a user level detector (0: the built-in peak/rms measure)
+P_USER_SMOOTHER = 30  # address of a user gain smoother (0: the built-in ballistics)
 USER_SLOT0 = 32  # the parameters a user algorithm declares itself live in slots 32..63
 NPARAM = 64
 

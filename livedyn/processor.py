@@ -14,7 +14,8 @@ from . import algorithms
 from .dsp import layout as L
 from .params import (
     KEY_EXTERNAL, LINK_MEAN, LINK_NONE, MAX_LOOKAHEAD_MS, NPARAM, P_KEY, P_LAW, P_LINK,
-    P_LOOKAHEAD, P_SAMPLERATE, P_TOPOLOGY, P_TRUE_PEAK, P_USER_CURVE, TOPOLOGY_FEEDBACK, ALL, ParamError,
+    P_LOOKAHEAD, P_SAMPLERATE, P_TOPOLOGY, P_TRUE_PEAK, P_USER_CURVE, P_USER_DETECTOR, P_USER_SMOOTHER, TOPOLOGY_FEEDBACK, ALL,
+    ParamError,
 )
 
 MAX_CHANNELS = 8
@@ -59,8 +60,10 @@ class Processor:
             self.p[prm.slot] = prm.default
         self.p[P_SAMPLERATE] = samplerate
         self.p[P_LAW] = self.algorithm.law
-        if self.algorithm.user_curve is not None:
-            self.p[P_USER_CURVE] = float(self.algorithm.user_curve.address)
+        for slot, stage in ((P_USER_CURVE, self.algorithm.user_curve),
+                            (P_USER_DETECTOR, self.algorithm.user_detector),
+                            (P_USER_SMOOTHER, self.algorithm.user_smoother)):
+            self.p[slot] = float(stage.address) if stage is not None else 0.0
         if self.algorithm.needs_key and self.key_channels == 0 and "key" in self.schema:
             self.p[self.schema["key"].slot] = 0.0  # no key input: fall back to the main input
         self._check_combination(self.p)
@@ -68,7 +71,9 @@ class Processor:
             self.set(name, value)
 
         ncols = max(self.channels, self.key_channels, 12)
-        self.st = np.zeros((L.NROWS, ncols), dtype=np.float64)
+        # rows from NROWS on: a user algorithm's declared state, (ncols, nstate) C-ordered
+        nstate = self.algorithm.state_size
+        self.st = np.zeros((L.NROWS + nstate, ncols), dtype=np.float64)
         from .dsp.limiter import TP_DELAY, TP_SPREAD
 
         self._tp_delay = TP_DELAY
@@ -142,6 +147,8 @@ class Processor:
     @property
     def latency_samples(self) -> int:
         """Delay of the main path in samples: the lookahead (plus the true-peak filter delay)."""
+        if self.algorithm.kind == "user":
+            return int(self.algorithm.latency)
         d = int(math.floor(self.p[P_LOOKAHEAD] * self.samplerate / 1000.0 + 0.5))
         if self.algorithm.kind == "limiter" and self.p[P_TRUE_PEAK] > 0.5:
             d += self._tp_delay
@@ -184,7 +191,8 @@ class Processor:
     def process(self, x, key=None):
         """Process a block: float32 (frames, channels) in, same shape out."""
         x, k, squeeze = self._prepare(x, key)
-        out = np.empty_like(x)
+        # a user kernel that leaves samples unwritten shows NaN there (caught by the checks)
+        out = np.full_like(x, np.nan) if self.algorithm.kind == "user" else np.empty_like(x)
         self._kernel(x, k, out, self.p, self.st, self.ring, self._no_trace)
         return out[:, 0] if squeeze else out
 
@@ -196,7 +204,7 @@ class Processor:
         (dB), the gain computer output (dB), the smoothed gain (dB) and the total gain (dB).
         """
         x, k, squeeze = self._prepare(x, key)
-        out = np.empty_like(x)
+        out = np.full_like(x, np.nan) if self.algorithm.kind == "user" else np.empty_like(x)
         tr = np.zeros((L.NTRACE, x.shape[0], self.st.shape[1]), dtype=np.float64)
         self._kernel(x, k, out, self.p, self.st, self.ring, tr)
         ngain = self.channels if int(self.p[P_LINK]) == LINK_NONE else 1

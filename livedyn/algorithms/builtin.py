@@ -15,17 +15,29 @@ class Algorithm:
     name: str
     description: str
     schema: Schema
-    kind: str  # which fused kernel runs it: "dynamics" or "limiter"
+    kind: str  # which kernel runs it: "dynamics", "limiter", or "user" (a file's whole kernel)
     law: int  # gain law for the dynamics kernel (see livedyn.dsp.gaincurve)
     needs_key: bool = False
     source: object = None  # a user algorithm's file
     user_curve: object = None  # its compiled gain curve (kept alive here)
+    user_detector: object = None  # its compiled level detector
+    user_smoother: object = None  # its compiled gain smoother
+    user_block: object = None  # its whole kernel, wrapped to the kernel contract (njit)
+    user_job: object = None  # the same as a job function for the live callback (cfunc)
+    state_size: int = 0  # declared state slots per channel
+    boost: bool = False  # the file declares gain above makeup on purpose
+    block: int = 0  # a block-based design's own frame size (0: sample by sample)
+    latency: int = 0  # a user kernel's declared latency, samples
+    stages: tuple = ()  # which stages the file provides
+    report: tuple = ()  # the load-time check report, one line each
+    digest: str = ""  # hash of the file's text
 
     def kernel(self):
+        if self.kind == "user":
+            return self.user_block
         from ..dsp import kernel_for
 
         return kernel_for(self.kind)
-
 
 
 _KEY = dict(key="main", key_hpf=0.0, key_lpf=0.0, key_bpf=0.0, key_q=1.0, link="max")

@@ -1,11 +1,11 @@
-"""User-written algorithms: a plain Python file that declares parameters and a gain curve.
+"""User-written algorithms: a plain Python file of parameters and numba stages.
 
 A file such as::
 
-    '''Soft clip of the gain: a compressor whose ratio grows with level.'''
+    '''A compressor whose ratio grows with level.'''
     NAME = "growing-ratio"
     PARAMS = ["threshold", "attack", "release", "makeup",
-              Param("growth", "dB", 1, 40, 12, help="level above threshold where the ratio doubles")]
+              Param("growth", "dB", 1, 40, 12, help="level above threshold where the ratio halves")]
 
     def gain_curve(level_db, p):
         over = level_db - p[P.threshold]
@@ -13,32 +13,69 @@ A file such as::
             return 0.0
         return -over * over / (over + p[P.growth])
 
-is a complete algorithm: livedyn's own detector, ballistics, key filters, lookahead, mix and
-safety stages run around the curve. ``gain_curve(level_db, p)`` takes the detector level in dB
-and the parameter array and returns the gain in dB (<= 0 attenuates); ``P`` is an enumeration
-livedyn puts into the module whose members name the parameter slots (``p[P.threshold]``).
-``PARAMS`` lists livedyn's parameters by name and the file's own as :class:`Param`.
+is a complete algorithm: livedyn's own key filters, detector, ballistics, lookahead, mix and
+safety stages run around the curve. A file may provide any of these stages; those it leaves out
+are livedyn's built-ins:
 
-The curve is compiled with numba in nopython mode (``error_model="numpy"``, no fastmath) as a
-C-callable function off the audio thread; the built-in fused kernel calls it through its address
-(:mod:`livedyn.dsp.calls`), so the kernel itself stays compiled and cached.
+``detector(k, p, s) -> level``
+    Per sample and key channel: the filtered key sample ``k`` in, a level out as a linear
+    amplitude (>= 0; livedyn takes it to dB). Replaces the peak/rms measure.
+``gain_curve(level_db, p) -> gain_db``
+    The static curve: detector level in dB in, gain in dB out (<= 0 attenuates).
+``smoother(gain_db, p, s) -> gain_db``
+    Per sample and gain channel: the curve's output in, the smoothed gain in dB out. Replaces
+    the attack/release/hold ballistics.
+``kernel(x, key, out, p, s)``
+    The whole per-block kernel instead of all of the above: float32 ``x`` (frames, channels),
+    ``key`` (frames, key channels; the main input when there is no key), ``out`` to write, the
+    parameter array ``p`` and the state ``s`` (channels, nstate) float64.
+
+``p`` is the float64 parameter array and ``P`` an enumeration livedyn puts into the module whose
+members name its slots (``p[P.threshold]``). ``s`` is this channel's row of declared state:
+``STATE = ["env", "peak"]`` gives ``s[S.env]`` and ``s[S.peak]``, zero at start, kept between
+blocks (``STATE = 8`` gives eight unnamed slots). Other declarations: ``NAME``, ``BOOST = True``
+(gain above makeup is intended), ``BLOCK = n`` and ``LATENCY = n`` (a block-based design's own
+frame size and its latency in samples).
+
+Every stage is compiled with numba in nopython mode (``error_model="numpy"``, no fastmath) off
+the audio thread. The stages run inside the built-in cached kernel, called through their
+addresses (:mod:`livedyn.dsp.calls`); a whole kernel becomes a job function of its own. After
+compiling, :mod:`livedyn.algorithms.checks` runs the file on test signals and refuses it if it
+is unsafe.
 """
 from __future__ import annotations
 
 import enum
 import hashlib
 import importlib.util
+import re
 import sys
+import threading
 import traceback
 from pathlib import Path
 
-from ..params import ALL, LAW_USER, USER_SLOT0, NPARAM, Param, ParamError, Schema
+import numpy as np
 
-__all__ = ["UserAlgorithmError", "load", "user_param", "is_user_file"]
+from ..params import (
+    ALL, LAW_COMPRESSOR, LAW_USER, NPARAM, P_SAMPLERATE, USER_SLOT0, Param, ParamError, Schema,
+)
+
+__all__ = ["UserAlgorithmError", "load", "user_param", "is_user_file", "STAGES", "MAX_STATE"]
+
+STAGES = ("detector", "gain_curve", "smoother", "kernel")
+MAX_STATE = 4096  # declared state slots per channel
+_CACHE = {}  # (path, digest) -> Algorithm: each version of a file is compiled and checked once
+_CACHE_LOCK = threading.Lock()
 
 
 class UserAlgorithmError(ParamError):
-    """A user algorithm file that cannot be used; one line naming the file (and line)."""
+    """A user algorithm file that cannot be used; one line naming the file (and line).
+
+    ``detail`` holds the full compiler or checker message, when there is one."""
+
+    def __init__(self, message, detail=""):
+        super().__init__(message)
+        self.detail = detail
 
 
 def user_param(name, unit, lo, hi, default, help="", taper="linear", update="sample"):
@@ -56,45 +93,102 @@ def _where(path, exc):
     return f"{path}:{lines[-1].lineno}" if lines else str(path)
 
 
-def load(path):
-    """Load, check and compile a user algorithm file; returns an Algorithm."""
-    from .builtin import Algorithm
+def load(path, check=True):
+    """Load, compile and check a user algorithm file; returns an Algorithm.
 
+    Raises UserAlgorithmError (one line; ``.detail`` for the full message) when the file cannot
+    be read, does not compile in nopython mode, or fails a safety check. Each version of a file
+    (by content) is compiled and checked once per process."""
     path = Path(path).resolve()
     if not path.is_file():
         raise UserAlgorithmError(f"{path}: no such algorithm file (expected a .py file)")
-    source = path.read_text(encoding="utf-8", errors="replace")
+    try:
+        source = path.read_text(encoding="utf-8", errors="replace")
+    except OSError as e:
+        raise UserAlgorithmError(f"{path}: cannot read: {e.strerror}") from None
+    digest = hashlib.sha256(source.encode()).hexdigest()[:12]
+    with _CACHE_LOCK:
+        got = _CACHE.get((path, digest, check))
+    if got is not None:
+        return got
+    alg = _build(path, source, digest)
+    if check:
+        from .checks import check_algorithm
+
+        alg = check_algorithm(alg)
+    with _CACHE_LOCK:
+        _CACHE[(path, digest, check)] = alg
+    return alg
+
+
+def _build(path, source, digest):
+    from .builtin import Algorithm
+
     try:
         compile(source, str(path), "exec")
     except SyntaxError as e:
         raise UserAlgorithmError(f"{path}:{e.lineno}: syntax error: {e.msg}") from None
-    digest = hashlib.sha256(source.encode()).hexdigest()[:12]
-    modname = f"livedyn_user_{path.stem.replace('-', '_')}_{digest}"
+    modname = f"livedyn_user_{re.sub(r'[^0-9A-Za-z_]', '_', path.stem)}_{digest}"
     spec = importlib.util.spec_from_file_location(modname, path)
     module = importlib.util.module_from_spec(spec)
     module.Param = user_param  # so that the file needs no import for its own parameters
     try:
         spec.loader.exec_module(module)
     except Exception as e:  # the user's code raised while being imported
-        raise UserAlgorithmError(f"{_where(path, e)}: {type(e).__name__}: {e}") from None
+        raise UserAlgorithmError(f"{_where(path, e)}: {type(e).__name__}: {e}",
+                                 traceback.format_exc()) from None
     sys.modules[modname] = module
 
-    schema, slots = _schema(path, getattr(module, "PARAMS", None))
+    fns = {}
+    for stage in STAGES:
+        fn = getattr(module, stage, None)
+        if fn is not None:
+            if not callable(fn):
+                raise UserAlgorithmError(f"{path}: {stage} = {fn!r}: expected a function")
+            fns[stage] = fn
+    if not fns:
+        raise UserAlgorithmError(f"{path}: defines none of {', '.join(STAGES)} (expected at "
+                                 "least one, e.g. gain_curve(level_db, p))")
+    if "kernel" in fns and len(fns) > 1:
+        others = ", ".join(s for s in fns if s != "kernel")
+        raise UserAlgorithmError(f"{path}: defines kernel and also {others}: a whole kernel "
+                                 "replaces the stages; keep one or the other")
+
+    schema, slots = _schema(path, getattr(module, "PARAMS", None), fns)
     module.P = enum.IntEnum("P", slots)
-    curve = getattr(module, "gain_curve", None)
-    if curve is None or not callable(curve):
-        raise UserAlgorithmError(f"{path}: defines no gain_curve(level_db, p) function")
-    cfunc = _compile_curve(path, curve)
+    names, nstate = _state(path, getattr(module, "STATE", 0))
+    if names:
+        module.S = enum.IntEnum("S", {n: i for i, n in enumerate(names)})
+    boost = _flag(path, module, "BOOST")
+    block = _count(path, module, "BLOCK", 0, 1 << 16)
+    latency = _count(path, module, "LATENCY", 0, 1 << 20)
+    if (block or latency) and "kernel" not in fns:
+        raise UserAlgorithmError(f"{path}: BLOCK and LATENCY belong to a whole kernel; the "
+                                 "built-in stages have no latency of their own")
+
     name = str(getattr(module, "NAME", path.stem))
     desc = (module.__doc__ or "").strip().splitlines()[0] if module.__doc__ else ""
-    return Algorithm(name, desc or f"user algorithm {path.name}", schema, "dynamics", LAW_USER,
-                     source=path, user_curve=cfunc)
+    common = dict(source=path, state_size=nstate, boost=boost, block=block, latency=latency,
+                  stages=tuple(fns), digest=digest)
+    if "kernel" in fns:
+        blk, job = _compile_kernel(path, fns["kernel"], nstate)
+        return Algorithm(name, desc or f"user kernel {path.name}", schema, "user", 0,
+                         user_block=blk, user_job=job, **common)
+    compiled = {stage: _compile_stage(path, stage, fn, nstate) for stage, fn in fns.items()}
+    law = LAW_USER if "gain_curve" in fns else LAW_COMPRESSOR
+    return Algorithm(name, desc or f"user algorithm {path.name}", schema, "dynamics", law,
+                     user_curve=compiled.get("gain_curve"),
+                     user_detector=compiled.get("detector"),
+                     user_smoother=compiled.get("smoother"), **common)
 
 
-def _schema(path, params):
+def _schema(path, params, fns):
     if params is None:
         raise UserAlgorithmError(f"{path}: defines no PARAMS list (livedyn's parameter names "
                                  "and Param(...) entries of its own)")
+    if isinstance(params, (str, bytes)) or not hasattr(params, "__iter__"):
+        raise UserAlgorithmError(f"{path}: PARAMS = {params!r}: expected a list of parameter "
+                                 "names and Param(...) entries")
     out, slots, next_slot = {}, {}, USER_SLOT0
     for entry in params:
         if isinstance(entry, str):
@@ -106,6 +200,9 @@ def _schema(path, params):
             if entry.name in ALL or not entry.name.isidentifier():
                 raise UserAlgorithmError(f"{path}: PARAMS: {entry.name!r} is livedyn's own name "
                                          "or not an identifier; choose another")
+            if not entry.lo <= entry.default <= entry.hi:
+                raise UserAlgorithmError(f"{path}: PARAMS: {entry.name} default {entry.default:g}"
+                                         f" is outside its range {entry.lo:g} to {entry.hi:g}")
             if next_slot >= NPARAM:
                 raise UserAlgorithmError(f"{path}: PARAMS: more than {NPARAM - USER_SLOT0} "
                                          "parameters of the file's own")
@@ -114,30 +211,162 @@ def _schema(path, params):
         else:
             raise UserAlgorithmError(f"{path}: PARAMS: {entry!r}: expected a parameter name "
                                      "or Param(...)")
+        if prm.name in out:
+            raise UserAlgorithmError(f"{path}: PARAMS: {prm.name!r} is listed twice")
         out[prm.name] = prm
         slots[prm.name] = prm.slot
-    for needed in ("attack", "release"):
-        if needed not in out:
-            out[needed] = ALL[needed]
-            slots[needed] = ALL[needed].slot
+    # the built-in stages a file leaves out read these; they appear as controls too
+    needed = []
+    if "kernel" not in fns:
+        if "smoother" not in fns:
+            needed += ["attack", "release"]
+        if "gain_curve" not in fns:
+            needed += ["threshold", "ratio", "knee"]
+    for n in needed:
+        if n not in out:
+            out[n] = ALL[n]
+            slots[n] = ALL[n].slot
+    slots["samplerate"] = P_SAMPLERATE  # readable by every stage, not a control
     return Schema(out), slots
 
 
-def _compile_curve(path, fn):
+def _state(path, state):
+    if isinstance(state, bool):
+        state = None
+    if isinstance(state, int):
+        if not 0 <= state <= MAX_STATE:
+            raise UserAlgorithmError(f"{path}: STATE = {state}: expected 0 to {MAX_STATE} slots "
+                                     "per channel")
+        return [], state
+    if isinstance(state, (list, tuple)) and all(isinstance(s, str) for s in state):
+        bad = [s for s in state if not s.isidentifier()]
+        if bad or len(set(state)) != len(state) or len(state) > MAX_STATE:
+            raise UserAlgorithmError(f"{path}: STATE = {list(state)!r}: expected distinct "
+                                     f"identifiers, at most {MAX_STATE}")
+        return list(state), len(state)
+    raise UserAlgorithmError(f"{path}: STATE = {state!r}: expected a list of names or a number "
+                             "of slots per channel")
+
+
+def _flag(path, module, name):
+    v = getattr(module, name, False)
+    if not isinstance(v, bool):
+        raise UserAlgorithmError(f"{path}: {name} = {v!r}: expected True or False")
+    return v
+
+
+def _count(path, module, name, lo, hi):
+    v = getattr(module, name, 0)
+    if isinstance(v, bool) or not isinstance(v, int) or not lo <= v <= hi:
+        raise UserAlgorithmError(f"{path}: {name} = {v!r}: expected a whole number of samples "
+                                 f"from {lo} to {hi}")
+    return v
+
+
+# ---- compilation ----------------------------------------------------------------------------
+
+_ANSI = re.compile(r"\x1b\[[0-9;]*m")
+
+
+def compile_error(path, what, exc):
+    """One line for a numba (or Python) error raised while compiling ``what``: the file and
+    line of the user's code when the message names them, and the first line of the reason."""
+    text = _ANSI.sub("", str(exc))
+    line = ""
+    for m in re.finditer(r'File "([^"]+)", line (\d+)', text):
+        try:
+            if Path(m.group(1)).resolve() == path:
+                line = m.group(2)
+        except OSError:
+            pass
+    if not line:
+        tb = traceback.extract_tb(exc.__traceback__)
+        mine = [f for f in tb if Path(f.filename).resolve() == path]
+        if mine:
+            line = str(mine[-1].lineno)
+    reason = ""
+    lines = [ln.strip() for ln in text.splitlines()]
+    for i, s in enumerate(lines):
+        if not s or s.startswith(("Failed in ", "During: ", "File ", "- ", "^")) or \
+                set(s) <= set("-=^ "):
+            continue
+        reason = s
+        if s.endswith(":"):  # "... found for signature:" -- the signature follows
+            nxt = next((t for t in lines[i + 1:] if t), "")
+            reason = f"{s} {nxt.removeprefix('>>> ')}"
+        break
+    reason = reason or type(exc).__name__
+    if len(reason) > 160:
+        reason = reason[:157] + "..."
+    where = f"{path}:{line}" if line else str(path)
+    return UserAlgorithmError(f"{where}: {what} does not compile in nopython mode: {reason} "
+                              f"(livedyn check {path.name} --full shows the compiler's message)",
+                              text)
+
+
+def jit_of(fn, **flags):
+    """The user's function compiled with our flags (its Python source when it is already a
+    numba dispatcher)."""
+    import numba as nb
+
+    py = getattr(fn, "py_func", fn)
+    return nb.njit(error_model="numpy", nogil=True, **flags)(py)
+
+
+def _compile_stage(path, stage, fn, nstate):
     import numba as nb
     from numba import carray, types
 
+    jit = jit_of(fn)
+    f64p = types.CPointer(types.float64)
     try:
-        jit = fn if hasattr(fn, "py_func") else nb.njit(error_model="numpy", nogil=True)(fn)
+        if stage == "gain_curve":
+            def wrapper(x, pp):
+                return jit(x, carray(pp, (NPARAM,)))
 
-        def wrapper(x, pp):
-            return jit(x, carray(pp, (NPARAM,)))
+            sig = types.float64(types.float64, f64p)
+        else:
+            def wrapper(x, pp, sp):
+                return jit(x, carray(pp, (NPARAM,)), carray(sp, (nstate,)))
 
-        cf = nb.cfunc(types.float64(types.float64, types.CPointer(types.float64)),
-                      nopython=True, error_model="numpy")(wrapper)
+            sig = types.float64(types.float64, f64p, f64p)
+        return nb.cfunc(sig, nopython=True, error_model="numpy")(wrapper)
     except Exception as e:
-        first = str(e).strip().splitlines()
-        reason = next((ln for ln in first if ln.strip() and not ln.startswith("-")), str(e))
-        raise UserAlgorithmError(f"{path}: gain_curve does not compile in nopython mode: "
-                                 f"{reason.strip()[:200]}") from None
-    return cf
+        raise compile_error(path, stage, e) from None
+
+
+def _compile_kernel(path, fn, nstate):
+    """The file's kernel wrapped to livedyn's kernel contract, and as a live job function."""
+    import numba as nb
+    from numba import carray, types
+
+    from ..dsp.layout import NROWS, S_FRAMES
+    from ..engine.callback import JOB_SIG, JOB_SIZE, J_CALLS, _job_arrays
+
+    jit = jit_of(fn)
+
+    def block(x, key, out, p, st, ring, tr):
+        ncols = st.shape[1]
+        s = st[NROWS:].reshape((ncols, nstate))
+        jit(x, key, out, p, s)
+        st[S_FRAMES, 0] += x.shape[0]
+
+    f32 = types.Array(types.float32, 2, "C")
+    sig = (f32, f32, f32, types.Array(types.float64, 1, "C"),
+           types.Array(types.float64, 2, "C"), types.Array(types.float64, 2, "C"),
+           types.Array(types.float64, 3, "C"))
+    try:
+        blk = nb.njit(nogil=True, error_model="numpy")(block)
+        blk.compile(sig)
+        blk.disable_compile()
+
+        def job(jp):
+            j = carray(jp, (JOB_SIZE,), np.int64)
+            x, k, y, p, st, ring, tr = _job_arrays(j)
+            blk(x, k, y, p, st, ring, tr)
+            j[J_CALLS] += 1
+
+        cf = nb.cfunc(JOB_SIG, nopython=True, error_model="numpy")(job)
+    except Exception as e:
+        raise compile_error(path, "kernel", e) from None
+    return blk, cf

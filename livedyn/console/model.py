@@ -205,6 +205,21 @@ class ConsoleModel:
         self.status = Status("Loud monitoring can damage hearing; beware feedback; follow "
                              "venue rules (? help)", "warn")
 
+    def _rebind(self):
+        """The engine swapped in another version of the algorithm: take its parameters."""
+        self.proc = self.engine.proc
+        self.schema = self.proc.schema
+        self.algorithm = self.proc.algorithm
+        chosen = self.names[self.selected] if self.names else None
+        self.names = list(self.schema.names())
+        self.selected = self.names.index(chosen) if chosen in self.names else 0
+        self.list_top = 0
+        current = {n: float(self.engine.get(n)) for n in self.names}
+        for slot in ("a", "b"):
+            self.slots[slot] = {n: self.slots[slot].get(n, current[n]) for n in self.names}
+            self.undo_stacks[slot] = []
+        self.slots[self.active] = dict(current)
+
     # ---- reading ------------------------------------------------------------------------------
     @property
     def param(self):
@@ -806,6 +821,13 @@ class ConsoleModel:
         watch = getattr(self.engine, "watch", None)
         if callable(watch):
             watch()
+        take = getattr(self.engine, "take_notices", None)
+        if callable(take):
+            for level, text in take():
+                self.status = Status(one_line(text), level if level in ("info", "warn")
+                                     else "error")
+        if getattr(self.engine, "proc", self.proc) is not self.proc:
+            self._rebind()
         e = getattr(self.engine, "error", None)
         if e:
             err = f"stream stopped: {e}"

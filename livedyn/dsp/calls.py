@@ -28,3 +28,27 @@ def call_curve(typingctx, addr, x, p):
         return builder.call(fptr, [xv, data])
 
     return sig, codegen
+
+
+@intrinsic
+def call_stage(typingctx, addr, x, p, st, offset):
+    """``double fn(double x, double *p, double *s)`` at the address ``addr`` (a float64), called
+    on ``x``, the data of ``p`` and ``s = st.data + offset`` (elements): a user stage with its
+    own row of declared state inside the kernel's state array."""
+    if not (isinstance(p, types.Array) and p.dtype == types.float64
+            and isinstance(st, types.Array) and st.dtype == types.float64
+            and isinstance(offset, types.Integer)):
+        return None
+    sig = types.float64(types.float64, types.float64, p, st, offset)
+
+    def codegen(context, builder, signature, args):
+        a, xv, parr, sarr, off = args
+        fnty = ir.FunctionType(_f64, [_f64, _f64.as_pointer(), _f64.as_pointer()])
+        fptr = builder.inttoptr(builder.fptosi(a, ir.IntType(64)), fnty.as_pointer())
+        pdata = context.make_array(signature.args[2])(context, builder, parr).data
+        sdata = context.make_array(signature.args[3])(context, builder, sarr).data
+        off64 = context.cast(builder, off, signature.args[4], types.int64)
+        srow = builder.gep(sdata, [off64])
+        return builder.call(fptr, [xv, pdata, srow])
+
+    return sig, codegen

@@ -26,12 +26,12 @@ from ..params import (
     P_AUTOMAKEUP, P_BALLISTICS, P_CEILING, P_DETECTOR, P_DOMAIN, P_HOLD, P_HYSTERESIS, P_KEY,
     P_KEY_BPF, P_KEY_HPF, P_KEY_LPF, P_KEY_Q, P_KNEE, P_LAW, P_LINK, P_LOOKAHEAD, P_MAKEUP,
     P_MIX, P_RANGE, P_RATIO, P_RELEASE, P_RMS_TIME, P_SAMPLERATE, P_THRESHOLD, P_TOPOLOGY,
-    P_USER_CURVE,
+    P_USER_CURVE, P_USER_DETECTOR, P_USER_SMOOTHER,
     TOPOLOGY_FEEDBACK,
 )
-from .calls import call_curve
+from .calls import call_curve, call_stage
 from .layout import (
-    C_BPF, C_HPF, C_LPF, R_BPZ, R_ENV, R_ENV1, R_FB, R_GAIN, R_HOLD, R_HPZ, R_LPZ, R_MEAS, R_MS,
+    NROWS, C_BPF, C_HPF, C_LPF, R_BPZ, R_ENV, R_ENV1, R_FB, R_GAIN, R_HOLD, R_HPZ, R_LPZ, R_MEAS, R_MS,
     R_OPEN, R_Y, R_Y1, S_AUTOMAKEUP_DB, S_CEIL, S_DCUR, S_DOLD, S_FRAMES, S_GR_MAX, S_HYST,
     S_KNEE, S_MAKEUP, S_MIX, S_NONFINITE, S_RANGE, S_READY, S_SLOPE, S_THR, S_WPOS, S_XF,
     T_CURVE, T_GAIN, T_KEY, T_LEVEL, T_TOTAL,
@@ -103,7 +103,11 @@ def dynamics_block(x, key, out, p, st, ring, tr):
     a_rms = one_pole_coeff(p[P_RMS_TIME], fs)
     g_glide = 1.0 - one_pole_coeff(GLIDE_MS, fs)
     hold_n = math.floor(p[P_HOLD] * fs / 1000.0 + 0.5)
-    rms = int(p[P_DETECTOR]) == DETECTOR_RMS
+    user_det = p[P_USER_DETECTOR] != 0.0
+    user_smooth = p[P_USER_SMOOTHER] != 0.0
+    nstate = st.shape[0] - NROWS  # a user algorithm's declared state per channel
+    s_off = NROWS * st.shape[1]
+    rms = int(p[P_DETECTOR]) == DETECTOR_RMS and not user_det
     comp_like = law == LAW_COMPRESSOR or law == LAW_USER
     decoupled = int(p[P_BALLISTICS]) == BALLISTICS_DECOUPLED and (comp_like or law == LAW_DUCKER)
     linear = int(p[P_DOMAIN]) == DOMAIN_LINEAR and comp_like
@@ -219,7 +223,9 @@ def dynamics_block(x, key, out, p, st, ring, tr):
                 k = biquad_tick(st, C_BPF, R_BPZ, j, k)
             if tracing:
                 tr[T_KEY, n, j] = k
-            if rms:
+            if user_det:
+                st[R_MEAS, j] = call_stage(p[P_USER_DETECTOR], k, p, st, s_off + j * nstate)
+            elif rms:
                 ms = flush(a_rms * st[R_MS, j] + (1.0 - a_rms) * k * k)
                 st[R_MS, j] = ms
                 st[R_MEAS, j] = ms
@@ -296,7 +302,9 @@ def dynamics_block(x, key, out, p, st, ring, tr):
                     gc = 0.0 if opened > 0.0 else -rng
 
             y = st[R_Y, g]
-            if linear:
+            if user_smooth:
+                y = call_stage(p[P_USER_SMOOTHER], gc, p, st, s_off + g * nstate)
+            elif linear:
                 y = gc
             elif decoupled:
                 # Smooth decoupled peak detector [1], eq. (17), in the gain domain: an instant

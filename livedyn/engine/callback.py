@@ -55,8 +55,19 @@ U_ELRING, U_RINGLEN = 35, 36  # int64 (ringlen, 3): elapsed ns, interval ns, fla
 U_SEQLOG, U_SEQLOG_LEN = 37, 38  # int64 (len, 2): (parameter sequence, frame) when applied
 U_STOPPING = 39
 U_EXTRA, U_NEXTRA = 40, 41  # int64 (n, 2) (fn, job) of extra instances (bench), run after
-U_JOB = 48  # the kernel job block of slot 0 lives at ud[U_JOB:U_JOB + JOB_SIZE]
+# live swap: the control side fills the incoming slot, then bumps U_SWAP_REQ (release); the
+# callback runs both versions (warm-up, then crossfade) and echoes U_SWAP_DONE = U_SWAP_REQ
+U_SWAP_REQ, U_SWAP_DONE, U_SWAP_SLOT = 42, 43, 44
+U_SWAP_WARM, U_SWAP_XF, U_SWAP_POS, U_SWAP_LAT = 45, 46, 47, 48
+U_Y2 = 49  # float32 (maxf, ch) scratch output of the incoming version
+U_SWAP_TAIL = 50  # blocks after a swap still counted as part of it (status flags arrive late)
+U_SWAP_ACTIVE = 51  # 1 while this block ran two versions
+# overrun guard: after U_GUARD_N blocks in a row over U_BUDGET_NS, crossfade to bypass
+U_GUARD_ON, U_GUARD_N, U_GUARD_COUNT, U_GUARD_STATE, U_GUARD_POS = 52, 53, 54, 55, 56
+U_GUARD_XF, U_BUDGET_NS = 57, 58
+U_JOB = 64  # the kernel job block of slot 0 lives at ud[U_JOB:U_JOB + JOB_SIZE]
 UD_SIZE = U_JOB + JOB_SIZE
+GUARD_OK, GUARD_FADING, GUARD_BYPASSED = 0, 1, 2
 
 MONITOR_OUT, MONITOR_KEY, MONITOR_DELTA = 0, 1, 2
 
@@ -69,6 +80,8 @@ S_UNDER_MAIN, S_UNDER_KEY, S_TAP_DROPPED = 12, 13, 14
 S_NONFINITE_BLOCKS, S_TOO_BIG, S_PERIOD_NS = 15, 16, 17
 S_CANARY, S_NULL_IN, S_LAST_OVERRUN = 18, 19, 20
 S_KSLOT_USED = 21
+S_SWAPS, S_SWAP_BLOCKS, S_SWAP_EL_MAX, S_SWAP_FLAGGED, S_SWAP_LATE = 22, 23, 24, 25, 26
+S_GUARD_TRIPS, S_GUARD_EL = 27, 28  # times the overrun guard bypassed; the block time then
 STATS_SIZE = 32
 
 # ---- safety state (float64) -----------------------------------------------------------------
@@ -168,11 +181,19 @@ def publish_params(ud, values):
 
 
 @nb.njit(**JIT)
+def publish_swap(ud, req):
+    """Control side: the incoming slot is filled; ask the callback to switch to it."""
+    store_release(ud, U_SWAP_REQ, req)
+
+
+@nb.njit(**JIT)
 def take_params(ud, stats, frame0):
     s1 = load_acquire(ud, U_SEQ)
     if s1 == ud[U_LAST_SEQ] or (s1 & 1) == 1:
         return
-    n = ud[U_JOB + J_PLEN]
+    table = carray(int_to_voidptr(ud[U_KTABLE]), (ud[U_NKSLOT], 2), np.int64)
+    job = carray(int_to_voidptr(table[load_relaxed(ud, U_KSLOT), 1]), (JOB_SIZE,), np.int64)
+    n = job[J_PLEN]
     pend = carray(int_to_voidptr(ud[U_PPEND]), (n,), np.float64)
     tmp = carray(int_to_voidptr(ud[U_PTMP]), (n,), np.float64)
     for i in range(n):
@@ -181,7 +202,7 @@ def take_params(ud, stats, frame0):
     if load_relaxed(ud, U_SEQ) != s1:
         stats[S_PARAM_TORN] += 1
         return
-    p = carray(int_to_voidptr(ud[U_JOB + J_P]), (n,), np.float64)
+    p = carray(int_to_voidptr(job[J_P]), (n,), np.float64)
     for i in range(n):
         p[i] = tmp[i]
     ud[U_LAST_SEQ] = s1
@@ -337,9 +358,11 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
     table = carray(int_to_voidptr(ud[U_KTABLE]), (ud[U_NKSLOT], 2), np.int64)
     jaddr = table[slot, 1]
     job = carray(int_to_voidptr(jaddr), (JOB_SIZE,), np.int64)
-    job[J_FRAMES] = n
-    job[J_TRN] = n if monitor == MONITOR_KEY else 0
-    call_job(table[slot, 0], int_to_voidptr(jaddr))
+    guard = ud[U_GUARD_STATE]
+    if guard != GUARD_BYPASSED:  # a kernel the guard took out is not called again
+        job[J_FRAMES] = n
+        job[J_TRN] = n if monitor == MONITOR_KEY else 0
+        call_job(table[slot, 0], int_to_voidptr(jaddr))
     stats[S_KSLOT_USED] = slot
     ne = ud[U_NEXTRA]
     if ne > 0:  # more instances of the processor on the same input (load measurement)
@@ -349,21 +372,67 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
             ej[J_FRAMES] = n
             call_job(extra[e, 0], int_to_voidptr(extra[e, 1]))
 
-    # ---- dry delay line (for bypass and delta, aligned with the processor's latency) --------
+    # ---- live swap: run the incoming version beside the current one, then crossfade --------
+    ud[U_SWAP_ACTIVE] = 0
+    req = load_acquire(ud, U_SWAP_REQ)
+    if req != ud[U_SWAP_DONE]:
+        ud[U_SWAP_ACTIVE] = 1
+        nslot = ud[U_SWAP_SLOT]
+        njaddr = table[nslot, 1]
+        njob = carray(int_to_voidptr(njaddr), (JOB_SIZE,), np.int64)
+        njob[J_FRAMES] = n
+        njob[J_TRN] = 0
+        call_job(table[nslot, 0], int_to_voidptr(njaddr))
+        y2 = carray(int_to_voidptr(ud[U_Y2]), (n, ch), np.float32)
+        warm = ud[U_SWAP_WARM]
+        pos = ud[U_SWAP_POS]
+        xfl = ud[U_SWAP_XF]
+        for i in range(n):
+            if warm > 0:  # the incoming delay line fills with live input; its output unused
+                warm -= 1
+            elif pos < xfl:
+                w = (pos + 1.0) / (xfl + 1.0)
+                for c in range(ch):
+                    y[i, c] = np.float32((1.0 - w) * y[i, c] + w * y2[i, c])
+                pos += 1
+            else:
+                for c in range(ch):
+                    y[i, c] = y2[i, c]
+        ud[U_SWAP_WARM] = warm
+        ud[U_SWAP_POS] = pos
+        if warm == 0 and pos >= xfl:  # done: the incoming version is the current one
+            njob[J_Y] = ud[U_Y]
+            ud[U_LATENCY] = ud[U_SWAP_LAT]
+            ud[U_GUARD_STATE] = GUARD_OK
+            ud[U_GUARD_COUNT] = 0
+            store_release(ud, U_KSLOT, nslot)
+            stats[S_SWAPS] += 1
+            ud[U_SWAP_TAIL] = 2
+            store_release(ud, U_SWAP_DONE, req)
+            job = njob
+
+    # ---- dry delay line (for bypass, delta and the guard, aligned with the latency) ---------
     dl = ud[U_DRY_LEN]
     dry = carray(int_to_voidptr(ud[U_DRY]), (dl, ch), np.float32)
     pos = ud[U_DRY_POS]
     lat = ud[U_LATENCY]
     bypass = load_relaxed(ud, U_BYPASS)
+    gpos = ud[U_GUARD_POS]
+    gxf = ud[U_GUARD_XF]
     for i in range(n):
         for c in range(ch):
             dry[pos, c] = x[i, c]
         r = pos - lat
         if r < 0:
             r += dl
-        if bypass != 0:
+        if bypass != 0 or guard == GUARD_BYPASSED:
             for c in range(ch):
                 y[i, c] = dry[r, c]
+        elif guard == GUARD_FADING:
+            w = (gpos + 1.0) / (gxf + 1.0) if gpos < gxf else 1.0
+            for c in range(ch):
+                y[i, c] = np.float32((1.0 - w) * y[i, c] + w * dry[r, c])
+            gpos += 1
         elif monitor == MONITOR_DELTA:
             for c in range(ch):
                 y[i, c] = dry[r, c] - y[i, c]
@@ -371,7 +440,11 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
         if pos >= dl:
             pos = 0
     ud[U_DRY_POS] = pos
-    if monitor == MONITOR_KEY and bypass == 0:
+    if guard == GUARD_FADING:
+        ud[U_GUARD_POS] = gpos
+        if gpos >= gxf:
+            ud[U_GUARD_STATE] = GUARD_BYPASSED
+    if monitor == MONITOR_KEY and bypass == 0 and guard != GUARD_BYPASSED:
         tr = carray(int_to_voidptr(job[J_TR]), (NTRACE, n, job[J_TRC]), np.float64)
         nk = kch if kch > 0 else ch
         for i in range(n):
@@ -482,6 +555,28 @@ def native_callback(inp_ptr, out_ptr, frames, time_info, status, user):
     if over and not started_late:
         stats[S_LATE] += 1
     stats[S_LAST_OVERRUN] = over
+    # ---- the blocks of a live swap (and the two after it, whose flags describe it) -----------
+    if ud[U_SWAP_ACTIVE] != 0 or ud[U_SWAP_TAIL] > 0:
+        if ud[U_SWAP_ACTIVE] == 0:
+            ud[U_SWAP_TAIL] -= 1
+        stats[S_SWAP_BLOCKS] += 1
+        if el > stats[S_SWAP_EL_MAX]:
+            stats[S_SWAP_EL_MAX] = el
+        if status != 0:
+            stats[S_SWAP_FLAGGED] += 1
+        if over or started_late:
+            stats[S_SWAP_LATE] += 1
+    # ---- overrun guard: a user kernel over budget for several blocks in a row --------------
+    if ud[U_GUARD_ON] != 0 and ud[U_GUARD_STATE] == GUARD_OK:
+        if el > ud[U_BUDGET_NS]:
+            ud[U_GUARD_COUNT] += 1
+            if ud[U_GUARD_COUNT] >= ud[U_GUARD_N]:
+                ud[U_GUARD_POS] = 0
+                ud[U_GUARD_STATE] = GUARD_FADING
+                stats[S_GUARD_TRIPS] += 1
+                stats[S_GUARD_EL] = el
+        else:
+            ud[U_GUARD_COUNT] = 0
     rl = ud[U_RINGLEN]
     rng = carray(int_to_voidptr(ud[U_ELRING]), (rl, 3), np.int64)
     b = (stats[S_BLOCKS] - 1) % rl

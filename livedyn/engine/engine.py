@@ -27,6 +27,17 @@ TAP_SECONDS = 2.0
 RECENT_SECONDS = 5.0
 ELRING = 1 << 16
 SEQLOG = 4096
+SWAP_XFADE_MS = 10.0  # crossfade between the old and the new version of an algorithm
+PRIME_SECONDS = 1.0  # recent input the new version runs on before it is heard
+GUARD_BLOCKS = 4  # blocks in a row over budget before the guard bypasses (common practice,
+GUARD_XFADE_MS = 5.0  # no source: long enough to rule out one preempted block, short enough
+#                       that the stream recovers within a few tens of milliseconds)
+
+
+def _job_function(alg):
+    if alg.kind == "user":
+        return alg.user_job
+    return cb.job_limiter if alg.kind == "limiter" else cb.job_dynamics
 
 
 class EngineError(RuntimeError):
@@ -217,14 +228,20 @@ class Engine:
         self.seqlog = np.full((SEQLOG, 2), -1, np.int64)
         self.trace = np.zeros(NTRACE * maxf * processor.st.shape[1], np.float64)
         self.table = np.zeros((4, 2), np.int64)
-        self.job = self.ud[cb.U_JOB:cb.U_JOB + cb.JOB_SIZE]
+        self.y2 = np.zeros((maxf, self.ch), np.float32)
+        # slot 0's job lives in the user-data block, slot 1's beside it; a live swap fills the
+        # slot not in use and the callback switches to it
+        self.jobs = [self.ud[cb.U_JOB:cb.U_JOB + cb.JOB_SIZE], np.zeros(cb.JOB_SIZE, np.int64)]
+        self._slot_owner = [processor, None]  # keeps each slot's processor (and code) alive
+        self._retired = None
+        self.swap_log = []  # one dict per completed swap
         rf = int(RING_SECONDS * self.fs)
         self.main_ring = _ring(rf, self.ch) if main_source is not None else None
         self.key_ring = _ring(rf, self.kch) if key_source is not None else None
         self.tap_width = 2 * self.ch + self.kch
         self.tap_ring = _ring(int(TAP_SECONDS * self.fs), self.tap_width)
 
-        kernel = cb.job_limiter if processor.algorithm.kind == "limiter" else cb.job_dynamics
+        kernel = _job_function(processor.algorithm)
         self._kernel_cfunc = kernel
         ud = self.ud
         ud[cb.U_STATS], ud[cb.U_STATS_LEN] = self.stats.ctypes.data, cb.STATS_SIZE
@@ -249,18 +266,17 @@ class Engine:
         ud[cb.U_METER], ud[cb.U_METER_LEN] = self.meter.ctypes.data, cb.METER_SIZE
         ud[cb.U_ELRING], ud[cb.U_RINGLEN] = self.elring.ctypes.data, ELRING
         ud[cb.U_SEQLOG], ud[cb.U_SEQLOG_LEN] = self.seqlog.ctypes.data, SEQLOG
-        job = self.job
-        job[cb.J_X], job[cb.J_K], job[cb.J_Y] = (self.x.ctypes.data,
-                                                 (self.k if self.kch else self.x).ctypes.data,
-                                                 self.y.ctypes.data)
-        job[cb.J_CH], job[cb.J_KCH] = self.ch, self.kch if self.kch else self.ch
-        p, st, ring = processor.p, processor.st, processor.ring
-        job[cb.J_P], job[cb.J_PLEN] = p.ctypes.data, NPARAM
-        job[cb.J_ST], job[cb.J_STR], job[cb.J_STC] = st.ctypes.data, *st.shape
-        job[cb.J_RING], job[cb.J_RINGR], job[cb.J_RINGC] = ring.ctypes.data, *ring.shape
-        job[cb.J_TR], job[cb.J_TRN], job[cb.J_TRC] = self.trace.ctypes.data, 0, st.shape[1]
+        job = self.jobs[0]
+        self._fill_job(job, processor, self.y)
         self.table[0, 0] = kernel.address
         self.table[0, 1] = job.ctypes.data
+        self.table[1, 1] = self.jobs[1].ctypes.data
+        ud[cb.U_Y2] = self.y2.ctypes.data
+        # the overrun guard watches user-written code only
+        ud[cb.U_GUARD_ON] = 1 if processor.algorithm.source is not None else 0
+        ud[cb.U_GUARD_N] = GUARD_BLOCKS
+        ud[cb.U_GUARD_XF] = max(1, int(round(GUARD_XFADE_MS * self.fs / 1000)))
+        ud[cb.U_BUDGET_NS] = int(round(1e9 * self.blocksize / self.fs))
         # extra instances (same settings, own state, output discarded) to measure headroom
         self._extra = []
         self.extra_table = np.zeros((max(int(instances) - 1, 1), 2), np.int64)
@@ -289,12 +305,35 @@ class Engine:
         self._recent_pos = 0
         self._recent_lock = threading.Lock()
         self._changes = []  # (seq, name, value) for the automation recording
+        self._schemas = [processor.schema]  # of every version run (for the automation file)
+        self._notices = []  # (level, text) for the console and the status lines
+        self._guard_told = False
         self._recorded = []  # (frame, name, value)
         self._threads = []
         self._stop_evt = threading.Event()
         self.stream = None
         self._writers = None
         self._warm_callback()
+
+    @property
+    def job(self):
+        """The job block of the kernel slot in use."""
+        return self.jobs[int(self.ud[cb.U_KSLOT])]
+
+    def _fill_job(self, job, proc, y):
+        job[cb.J_X], job[cb.J_K], job[cb.J_Y] = (self.x.ctypes.data,
+                                                 (self.k if self.kch else self.x).ctypes.data,
+                                                 y.ctypes.data)
+        job[cb.J_FRAMES] = 0
+        job[cb.J_CH], job[cb.J_KCH] = self.ch, self.kch if self.kch else self.ch
+        p, st, ring = proc.p, proc.st, proc.ring
+        job[cb.J_P], job[cb.J_PLEN] = p.ctypes.data, NPARAM
+        job[cb.J_ST], job[cb.J_STR], job[cb.J_STC] = st.ctypes.data, *st.shape
+        job[cb.J_RING], job[cb.J_RINGR], job[cb.J_RINGC] = ring.ctypes.data, *ring.shape
+        job[cb.J_TR], job[cb.J_TRN], job[cb.J_TRC] = self.trace.ctypes.data, 0, st.shape[1]
+        job[cb.J_CALLS] = 0
+        if st.shape[1] * NTRACE * self.maxf > len(self.trace):
+            raise EngineError("internal: trace buffer too small for the new processor")
 
     # ---- life cycle ---------------------------------------------------------------------------
     def _warm_callback(self):
@@ -540,6 +579,113 @@ class Engine:
                 self.set(n, v)
         return pr
 
+    # ---- live swap ----------------------------------------------------------------------------
+    def swap(self, algorithm, timeout=3.0, xfade_ms=SWAP_XFADE_MS, prime_seconds=PRIME_SECONDS):
+        """Replace the running algorithm with ``algorithm`` (an Algorithm, e.g. a new version
+        of a user file) without a dropout.
+
+        Off the audio thread: a new Processor takes the values of the parameters both versions
+        share (the others start at their defaults) and runs on the most recent input, so that
+        its detector and gain are where the old one's are. Then the callback runs both
+        versions: first until the new one's delay line holds live input, then a crossfade of
+        ``xfade_ms``, after which the new one is current and the callback echoes the switch. The
+        old version's code and state stay alive until that echo. Returns a dict of what
+        happened; raises EngineError when the callback does not confirm within ``timeout``."""
+        from .. import algorithms
+
+        alg = algorithms.get(algorithm)
+        with self._lock:
+            if self.stream is None or self.error is not None:
+                raise EngineError("swap: the stream is not running")
+            if int(self.ud[cb.U_SWAP_REQ]) != int(self.ud[cb.U_SWAP_DONE]):
+                raise EngineError("swap: the previous swap has not finished")
+            t0 = time.monotonic()
+            old = self.proc
+            new = Processor(alg, self.fs, self.ch, self.kch)
+            carried = []
+            for prm in new.schema:
+                if prm.name in old.schema:
+                    try:
+                        new.set(prm.name, float(self.pend[old.schema[prm.name].slot]))
+                        carried.append(prm.name)
+                    except ParamError:
+                        pass  # out of the new range: the new default stands
+            main, key = self.recent_input(prime_seconds)
+            if len(main):
+                blk = 1024
+                for i in range(0, len(main), blk):
+                    new.process(main[i:i + blk], key[i:i + blk] if key is not None else None)
+            t_prime = time.monotonic() - t0
+            cur = int(self.ud[cb.U_KSLOT])
+            nxt = 1 - cur
+            job = self.jobs[nxt]
+            self._fill_job(job, new, self.y2)
+            self._slot_owner[nxt] = new
+            self.table[nxt, 0] = _job_function(alg).address
+            self.table[nxt, 1] = job.ctypes.data
+            lat = new.latency_samples
+            self.ud[cb.U_SWAP_SLOT] = nxt
+            self.ud[cb.U_SWAP_WARM] = lat + self.blocksize if lat > 0 else 0
+            self.ud[cb.U_SWAP_XF] = max(1, int(round(xfade_ms * self.fs / 1000)))
+            self.ud[cb.U_SWAP_POS] = 0
+            self.ud[cb.U_SWAP_LAT] = lat
+            blocks0 = int(self.stats[cb.S_SWAP_BLOCKS])
+            req = int(self.ud[cb.U_SWAP_REQ]) + 1
+            cb.publish_swap(self.ud, req)
+            t_end = time.monotonic() + timeout
+            while int(self.ud[cb.U_SWAP_DONE]) != req:
+                if time.monotonic() > t_end or not self.alive():
+                    self._retired = (old, new)  # the callback may still use either: keep both
+                    raise EngineError(f"swap: the callback did not confirm the switch within "
+                                      f"{timeout:g} s")
+                time.sleep(0.001)
+            # the callback now runs the new version only: the old one may go after this
+            self._retired = old
+            self._slot_owner[cur] = None
+            self.proc = new
+            self.pend[:] = new.p
+            self.ptmp[:] = new.p
+            self.ud[cb.U_GUARD_ON] = 1 if alg.source is not None else 0
+            self._schemas.append(new.schema)
+            info = {"algorithm": alg.name, "frame": int(self.stats[cb.S_FRAMES]),
+                    "prime_s": t_prime, "switch_s": time.monotonic() - t0 - t_prime,
+                    "carried": carried, "latency": lat,
+                    "swap_blocks": int(self.stats[cb.S_SWAP_BLOCKS]) - blocks0}
+            self.swap_log.append(info)
+            return info
+
+    def notice(self, level, text):
+        """Post a one-line message ("info", "warn" or "error") for whoever shows the run."""
+        with self._lock:
+            self._notices.append((level, str(text)))
+
+    def take_notices(self):
+        """Messages posted since the last call, oldest first; the overrun guard's among them."""
+        g = self.guard_tripped()
+        if g and not self._guard_told:
+            self._guard_told = True
+            self.notice("error", g)
+        elif not g:
+            self._guard_told = False
+        with self._lock:
+            out, self._notices = self._notices, []
+        return out
+
+    def guard_tripped(self):
+        """None, or one line saying that the overrun guard has bypassed the algorithm."""
+        state = int(self.ud[cb.U_GUARD_STATE])
+        if state == cb.GUARD_OK:
+            return None
+        el = self.stats[cb.S_GUARD_EL] / max(1, self.stats[cb.S_PERIOD_NS])
+        return (f"{self.proc.algorithm.name} overran the block budget for {GUARD_BLOCKS} blocks "
+                f"in a row (last {el:.1f} periods): bypassed, the stream goes on; load a new "
+                "version or call reset_guard()")
+
+    def reset_guard(self):
+        """Run the algorithm again after the overrun guard bypassed it."""
+        self.ud[cb.U_GUARD_COUNT] = 0
+        self.ud[cb.U_GUARD_STATE] = cb.GUARD_OK
+
     def bypass(self, on=True):
         self.ud[cb.U_BYPASS] = 1 if on else 0
 
@@ -628,7 +774,10 @@ class Engine:
     def _write_automation(self):
         from ..automation import Automation
 
-        auto = Automation(self.fs, schema=self.proc.schema)
+        from ..params import Schema
+
+        union = {prm.name: prm for sch in self._schemas for prm in sch}
+        auto = Automation(self.fs, schema=Schema(union))
         for frame, name, v in sorted(self._recorded, key=lambda e: e[0]):
             auto.add(frame, name, v)
         auto.save(self.record_dir / "automation.txt")

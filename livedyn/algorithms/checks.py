@@ -1,0 +1,300 @@
+"""Load-time checks of a user algorithm, on test signals livedyn synthesises.
+
+In order, each reported as one line (``Algorithm.report``):
+
+1. bounds: every stage of the file is compiled again with bounds checking on and run on test
+   input; an out-of-bounds index refuses the file, naming the stage.
+2. allocation: a stage that allocates on the heap per call is reported (allocation is not
+   real-time safe; declare STATE instead). Reported, not refused.
+3. finite: the whole algorithm, inside livedyn's pipeline, on the test programme (silence, sine
+   steps from -80 to 0 dBFS, noise bursts, clicks, a full-scale square) with the key taken from
+   the main input and, when the file has a key parameter, from a separate key signal. Any NaN
+   or infinity in the output refuses it.
+4. boost: stages inside the built-in pipeline: the smoothed gain (before makeup) must stay at or
+   below 0 dB. A whole kernel: each 1 ms window of output may not peak above the makeup gain
+   times the input's peak over the same window widened by the declared latency and one window
+   either side. Refused unless the file declares ``BOOST = True``.
+5. block size: the output for host blocks of 1, 7, 64 and 1000 frames must equal the output of
+   one block to within 1e-6 (-120 dBFS). A file that declares ``BLOCK`` (its own frame size) is
+   accepted and reported as block-based instead; otherwise a difference refuses it.
+6. time per frame: the median of five timed passes at 1024-frame blocks, stereo, as ns per frame
+   and as a share of real time at the check's sample rate. More than MAX_SHARE refuses it: a
+   live swap runs the old and the new version together for its crossfade (common practice, no
+   source: leave half of the block budget for the rest of the callback and the machine).
+"""
+from __future__ import annotations
+
+import dataclasses
+import time
+
+import numpy as np
+
+from .user import STAGES, UserAlgorithmError, jit_of
+
+MAX_SHARE = 0.25  # of one core's real time, per instance (x2 during a swap's crossfade)
+INVARIANCE_TOL = 1e-6
+BLOCKS = (1, 7, 64, 1000)
+FS = 48000.0
+
+
+def test_programme(fs=FS, channels=2, seed=1):
+    """Main and key test signals, float32 (frames, channels) and (frames, 1): about 2.2 s."""
+    rng = np.random.default_rng(seed)
+    seg = int(0.15 * fs)
+    t = np.arange(seg) / fs
+    parts = [np.zeros(seg)]
+    for db in (-80, -50, -30, -18, -9, -3, 0):
+        parts.append(10 ** (db / 20) * np.sin(2 * np.pi * 997 * t))
+    parts.append(0.5 * rng.standard_normal(seg))
+    parts.append(np.zeros(seg))
+    clicks = np.zeros(seg)
+    clicks[::int(0.03 * fs)] = 0.99
+    parts.append(clicks)
+    parts.append(np.sign(np.sin(2 * np.pi * 113 * t)) * 1.0)
+    parts.append(0.05 * rng.standard_normal(seg))
+    main = np.concatenate(parts)
+    x = np.stack([main * (1.0 if c % 2 == 0 else 0.7) for c in range(channels)], axis=1)
+    # key: speech-like bursts of a band of noise, on and off every 0.3 s
+    n = len(main)
+    env = ((np.arange(n) // int(0.3 * fs)) % 2 == 1).astype(float)
+    key = env * 0.3 * rng.standard_normal(n)
+    return np.clip(x, -1, 1).astype(np.float32), key[:, None].astype(np.float32)
+
+
+def check_algorithm(alg, samplerate=FS):
+    """Run every check; return ``alg`` with its report, or raise UserAlgorithmError."""
+    from ..processor import Processor
+
+    path = alg.source
+    lines = [f"compiles in nopython mode: {', '.join(alg.stages)}"]
+    x, key = test_programme(samplerate)
+
+    # 1. bounds-checked pass, 2. allocation
+    _bounds_pass(alg, x, key, samplerate)
+    lines.append("bounds-checked pass: no out-of-bounds access")
+    alloc = _allocates(alg)
+    lines.append("allocation: " + (f"{', '.join(alloc)} allocate(s) on the heap per call "
+                                   "(not real-time safe: declare STATE instead)" if alloc
+                                   else "none per call"))
+
+    configs = [("main", None)]
+    if "key" in alg.schema:
+        configs.append(("external", key))
+    for keymode, k in configs:
+        proc = Processor(alg, samplerate, x.shape[1], key_channels=1 if k is not None else 0)
+        if "key" in alg.schema:
+            proc.set("key", keymode)
+        ref, gain_db = _run(proc, x, k, None, traced=alg.kind != "user")
+        # 3. finite
+        bad = ~np.isfinite(ref)
+        if bad.any():
+            i = int(np.argwhere(bad)[0][0])
+            hint = "; does the kernel write every out[n, c]?" if alg.kind == "user" else ""
+            raise UserAlgorithmError(f"{path}: refused: output is not finite (first at "
+                                     f"{i / samplerate:.3f} s of the test signal, key "
+                                     f"{keymode}{hint})")
+        # 4. boost
+        over = _boost(alg, proc, x, ref, gain_db, samplerate)
+        if over is not None and not alg.boost:
+            db, i = over
+            raise UserAlgorithmError(f"{path}: refused: gain {db:+.2f} dB above makeup at "
+                                     f"{i / samplerate:.3f} s of the test signal (declare "
+                                     "BOOST = True if that is intended)")
+        # 5. block size
+        worst = 0.0
+        for b in BLOCKS:
+            proc.reset()
+            y, _ = _run(proc, x, k, b)
+            d = float(np.max(np.abs(y.astype(np.float64) - ref))) if len(y) else 0.0
+            if not np.isfinite(d):
+                d = float("inf")
+            worst = max(worst, d)
+        if keymode == "main":
+            lines.append("finite output: yes, on silence, sine steps to 0 dBFS, noise, clicks "
+                         "and a full-scale square")
+            if over is None:
+                lines.append("gain above makeup: none")
+            else:
+                lines.append(f"gain above makeup: {over[0]:+.2f} dB (declared: BOOST = True)")
+        if worst > INVARIANCE_TOL:
+            if alg.block:
+                lines.append(f"block size: block-based, frame {alg.block}, latency "
+                             f"{alg.latency} samples (declared); output depends on the host "
+                             f"block (up to {worst:.2g})")
+            else:
+                raise UserAlgorithmError(
+                    f"{path}: refused: output depends on the host block size (differs by "
+                    f"{worst:.3g} between blocks of {', '.join(map(str, BLOCKS))} and one "
+                    "block; keep state per sample, or declare BLOCK and LATENCY)")
+        elif keymode == "main":
+            exact = worst == 0.0
+            lines.append(f"block size: {'bit-identical' if exact else f'within {worst:.1g}'} "
+                         f"for blocks of {', '.join(map(str, BLOCKS))} frames"
+                         + (f"; block-based, frame {alg.block}, latency {alg.latency} samples "
+                            "(declared)" if alg.block else ""))
+
+    # 6. time per frame
+    ns = time_per_frame(alg, samplerate)
+    share = ns * samplerate / 1e9
+    verdict = (f"time per frame: {ns:.0f} ns at 1024-frame blocks, stereo "
+               f"({100 * share:.2f} % of real time at {samplerate / 1000:g} kHz)")
+    if share > MAX_SHARE:
+        raise UserAlgorithmError(f"{path}: refused: too slow for live use: {ns:.0f} ns per "
+                                 f"frame is {100 * share:.0f} % of real time at "
+                                 f"{samplerate / 1000:g} kHz stereo (limit "
+                                 f"{100 * MAX_SHARE:.0f} %: a live swap runs two versions)")
+    lines.append(verdict)
+    return dataclasses.replace(alg, report=tuple(lines))
+
+
+def _run(proc, x, key, block, traced=False):
+    """Output (float64) and, when traced, the smoothed gain in dB, for blocks of ``block``."""
+    n = len(x)
+    step = n if block is None else block
+    out = np.empty((n, x.shape[1]), np.float64)
+    gains = []
+    for i in range(0, n, step):
+        xb = x[i:i + step]
+        kb = key[i:i + step] if key is not None else None
+        if traced:
+            yb, tr = proc.process_traced(xb, kb)
+            gains.append(tr["gain_db"])
+        else:
+            yb = proc.process(xb, kb)
+        out[i:i + len(xb)] = yb
+    return out, (np.concatenate(gains) if gains else None)
+
+
+def _boost(alg, proc, x, y, gain_db, fs):
+    """(largest boost in dB, frame) or None."""
+    if alg.kind != "user":
+        if gain_db is None or len(gain_db) == 0:
+            return None
+        m = float(np.max(gain_db))
+        if m > 1e-3:
+            return m, int(np.argmax(np.max(gain_db, axis=1)))
+        return None
+    mk = 0.0
+    if "makeup" in alg.schema:
+        mk = proc.get("makeup")
+    lim = 10 ** (mk / 20) * 10 ** (0.01 / 20)  # 0.01 dB for rounding
+    w = max(1, int(fs / 1000))
+    lat = alg.latency + (alg.block or 0)
+    a_in = np.max(np.abs(x.astype(np.float64)), axis=1)
+    a_out = np.max(np.abs(y), axis=1)
+    n = len(a_in)
+    nw = (n + w - 1) // w
+    pad = nw * w - n
+    win_in = np.pad(a_in, (0, pad)).reshape(nw, w).max(axis=1)
+    win_out = np.pad(a_out, (0, pad)).reshape(nw, w).max(axis=1)
+    spread = lat // w + 2
+    allowed = np.zeros(nw)
+    for i in range(nw):
+        lo = max(0, i - spread)
+        allowed[i] = win_in[lo:i + 2].max()
+    bad = win_out > lim * allowed + 1e-6
+    if bad.any():
+        i = int(np.argmax(bad))
+        ratio = win_out[i] / max(allowed[i], 1e-12)
+        return 20 * np.log10(ratio) - mk, i * w
+    return None
+
+
+def _bounds_pass(alg, x, key, fs):
+    """Run each stage compiled with bounds checking on; an IndexError refuses the file."""
+    import importlib
+
+    path = alg.source
+    mod = None
+    for name, m in list(__import__("sys").modules.items()):
+        if name.startswith("livedyn_user_") and name.endswith(alg.digest):
+            mod = m
+    if mod is None:
+        mod = importlib.import_module  # pragma: no cover (the module is registered by load)
+    from ..processor import Processor
+
+    proc = Processor(alg, fs, x.shape[1])
+    p = proc.p.copy()
+    ns = max(alg.state_size, 0)
+    for stage in alg.stages:
+        fn = getattr(mod, stage)
+        try:
+            bc = jit_of(fn, boundscheck=True)
+        except Exception as e:  # pragma: no cover (it compiled a moment ago without)
+            from .user import compile_error
+
+            raise compile_error(path, stage, e) from None
+        try:
+            if stage == "kernel":
+                s = np.zeros((proc.st.shape[1], ns))
+                out = np.zeros_like(x)
+                k = x
+                for i in range(0, len(x), 64):
+                    bc(x[i:i + 64], k[i:i + 64], out[i:i + 64], p, s)
+            elif stage == "gain_curve":
+                levels = np.concatenate([np.linspace(-200, 30, 921), [-np.inf, np.inf]])
+                _drive_curve(bc, levels, p)
+            else:
+                s = np.zeros(ns)
+                if stage == "detector":
+                    v = np.concatenate([x[::8, 0], key[::8, 0]]).astype(np.float64)
+                else:
+                    v = np.concatenate([np.linspace(0, -60, 4800), np.full(2400, -60.0),
+                                        np.linspace(-60, 0, 4800), np.zeros(2400)])
+                _drive_stage(bc, v, p, s)
+        except IndexError as e:
+            raise UserAlgorithmError(f"{path}: refused: {stage} reads or writes out of bounds "
+                                     f"({e}; STATE declares {ns} slots per channel)") from None
+        except Exception as e:
+            raise UserAlgorithmError(f"{path}: refused: {stage} raised {type(e).__name__}: {e}"
+                                     ) from None
+
+
+def _drive_curve(fn, levels, p):
+    for v in levels:
+        fn(float(v), p)
+
+
+def _drive_stage(fn, v, p, s):
+    # called from Python, sample by sample: compiling a numba driver per file costs seconds
+    for x in v:
+        fn(float(x), p, s)
+
+
+def _allocates(alg):
+    """Stages whose compiled code calls the numba runtime's allocator."""
+    found = []
+    for stage, cf in (("gain_curve", alg.user_curve), ("detector", alg.user_detector),
+                      ("smoother", alg.user_smoother), ("kernel", alg.user_job)):
+        if cf is None:
+            continue
+        try:
+            ir = cf.inspect_llvm()
+        except Exception:  # pragma: no cover
+            continue
+        if "NRT_MemInfo_alloc" in ir or "NRT_Allocate" in ir:
+            found.append(stage)
+    return found
+
+
+def time_per_frame(alg, fs=FS, channels=2, block=1024, seconds=0.5, repeats=5):
+    """Median ns per frame of the algorithm's kernel on noise, called at ``block`` frames."""
+    from ..processor import Processor
+
+    proc = Processor(alg, fs, channels)
+    rng = np.random.default_rng(3)
+    n = int(seconds * fs) // block * block
+    x = (0.3 * rng.standard_normal((n, channels))).astype(np.float32)
+    out = np.empty_like(x)
+    kern, p, st, ring, tr = proc._kernel, proc.p, proc.st, proc.ring, proc._no_trace
+    times = []
+    for _ in range(repeats):
+        t0 = time.perf_counter_ns()
+        for i in range(0, n, block):
+            xb = x[i:i + block]
+            kern(xb, xb, out[i:i + block], p, st, ring, tr)
+        times.append((time.perf_counter_ns() - t0) / n)
+    return float(np.median(times))
+
+
+__all__ = ["check_algorithm", "time_per_frame", "test_programme", "MAX_SHARE", "STAGES"]
