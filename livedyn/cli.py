@@ -386,6 +386,10 @@ def _cmd_run(args):
         key_src = FileSource(args.key_file, loop=args.loop, samplerate=fs)
     ch = main_src.channels if main_src is not None else (len(main_in) if main_in else 2)
     kch = key_src.channels if key_src is not None else (len(key_in) if key_in else 0)
+    if args.key_demo and not args.key_file and not _has_key(setup):
+        # the scene's music alone: this algorithm has no key input for the narrator
+        print("(--key-demo: the algorithm has no key input; playing the scene's music only)")
+        key_src, kch = None, 0
     proc = build_processor(setup, fs, ch, kch)
     if args.watch and proc.algorithm.source is None:
         raise CliError(f"--watch: {proc.algorithm.name} is built in; --watch reloads an "
@@ -467,6 +471,17 @@ def _cmd_run(args):
           f"{100 * snap['callback_load']['p99_9']:.1f} % of the block period"
           + (f"; recorded to {args.record}/" if args.record else ""))
     return 0
+
+
+def _has_key(setup):
+    """Whether the algorithm a Setup names takes a key input (a preset's or the default)."""
+    from . import algorithms, presets
+
+    name = setup.algorithm
+    if name is None and setup.preset is not None:
+        pr = presets.load(setup.preset)
+        name = str(pr.algorithm_file) if pr.algorithm_file is not None else pr.algorithm
+    return "key" in algorithms.get(name or "compressor").schema
 
 
 def _print_report(alg):

@@ -71,9 +71,11 @@ class Processor:
             self.set(name, value)
 
         ncols = max(self.channels, self.key_channels, 12)
-        # rows from NROWS on: a user algorithm's declared state, (ncols, nstate) C-ordered
+        # rows from NROWS on: a user algorithm's declared state, read as a C-ordered
+        # (2 * ncols, nstate) block: a row per key channel for its detector (or per channel for
+        # its kernel), then a row per gain channel for its smoother
         nstate = self.algorithm.state_size
-        self.st = np.zeros((L.NROWS + nstate, ncols), dtype=np.float64)
+        self.st = np.zeros((L.NROWS + 2 * nstate, ncols), dtype=np.float64)
         from .dsp.limiter import TP_DELAY, TP_SPREAD
 
         self._tp_delay = TP_DELAY

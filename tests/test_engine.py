@@ -609,12 +609,13 @@ def test_callback_ir_reaches_no_gil_allocation_or_runtime_call(callback_ir):
         assert r["violations"] == [], (name, r["violations"])
         assert not [e for e in r["externals"] if FORBIDDEN.match(e)]
     # the callback's indirect calls are the kernel calls through address tables (the kernel
-    # slot, and the extra instances the bench runs), whose entries are the job cfuncs (asserted
-    # on a real Engine in the live-equals-offline test); the kernels make none
-    assert report["native_callback"]["indirect_calls"] == 2
-    # the dynamics kernel makes one: a user algorithm's gain curve, through the address in the
-    # parameter array (livedyn.dsp.calls; taken only when the gain law is LAW_USER)
-    assert report["job_dynamics"]["indirect_calls"] == 1
+    # slot, the incoming slot of a live swap, and the extra instances the bench runs), whose
+    # entries are the job cfuncs (asserted on a real Engine in the live-equals-offline test)
+    assert report["native_callback"]["indirect_calls"] == 3
+    # the dynamics kernel makes three: a user algorithm's gain curve, detector and smoother,
+    # through the addresses in the parameter array (livedyn.dsp.calls; each taken only when
+    # its address is set)
+    assert report["job_dynamics"]["indirect_calls"] == 3
     assert report["job_limiter"]["indirect_calls"] == 0
     assert "clock_gettime" in report["native_callback"]["externals"]
     assert any("dynamics_block" in f for f in report["job_dynamics"]["functions"])

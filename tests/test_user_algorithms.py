@@ -74,7 +74,15 @@ def test_own_parameters_get_slots_and_are_validated(tmp_path):
 
 @pytest.mark.parametrize("text,words", [
     ("PARAMS = ['threshold']\ndef gain_curve(x, p)\n    return 0.0\n", ["algo.py:2", "syntax"]),
-    ("PARAMS = ['threshold']\n", ["no gain_curve"]),
+    ("PARAMS = ['threshold']\n", ["defines none of detector, gain_curve"]),
+    ("PARAMS = ['threshold']\ndef gain_curve(x, p):\n    return 0.0\n"
+     "def kernel(x, k, o, p, s):\n    pass\n", ["kernel and also gain_curve"]),
+    ("PARAMS = ['threshold']\nSTATE = 'env'\ndef gain_curve(x, p):\n    return 0.0\n",
+     ["STATE = 'env': expected a list of names"]),
+    ("PARAMS = ['threshold']\nBLOCK = 256\ndef gain_curve(x, p):\n    return 0.0\n",
+     ["BLOCK and LATENCY belong to a whole kernel"]),
+    ("PARAMS = ['threshold']\ndef gain_curve(x, p):\n    return 'a' + x\n",
+     ["algo.py:3", "does not compile", "add(", "--full"]),
     ("def gain_curve(x, p):\n    return 0.0\n", ["no PARAMS"]),
     ("PARAMS = ['loudness']\ndef gain_curve(x, p):\n    return 0.0\n", ["unknown parameter"]),
     ("PARAMS = ['threshold']\ndef gain_curve(x, p):\n    return {'a': x}\n",

@@ -213,17 +213,29 @@ def _bounds_pass(alg, x, key, fs):
         mod = importlib.import_module  # pragma: no cover (the module is registered by load)
     from ..processor import Processor
 
+    from numba.core.registry import CPUDispatcher
+
     proc = Processor(alg, fs, x.shape[1])
     p = proc.p.copy()
     ns = max(alg.state_size, 0)
+    # the file's own numba helpers are bounds-checked too: while the stages compile, the
+    # module's names point at bounds-checked copies of them
+    saved = {k: v for k, v in vars(mod).items() if isinstance(v, CPUDispatcher)}
     for stage in alg.stages:
         fn = getattr(mod, stage)
         try:
+            for k, v in saved.items():
+                if k not in STAGES:
+                    setattr(mod, k, jit_of(v, boundscheck=True))
             bc = jit_of(fn, boundscheck=True)
+            bc.compile(_stage_sig(stage, ns))
         except Exception as e:  # pragma: no cover (it compiled a moment ago without)
             from .user import compile_error
 
             raise compile_error(path, stage, e) from None
+        finally:
+            for k, v in saved.items():
+                setattr(mod, k, v)
         try:
             if stage == "kernel":
                 s = np.zeros((proc.st.shape[1], ns))
@@ -244,10 +256,22 @@ def _bounds_pass(alg, x, key, fs):
                 _drive_stage(bc, v, p, s)
         except IndexError as e:
             raise UserAlgorithmError(f"{path}: refused: {stage} reads or writes out of bounds "
-                                     f"({e}; STATE declares {ns} slots per channel)") from None
+                                     f"({e}; STATE declares {ns} slot(s) per channel)") from None
         except Exception as e:
             raise UserAlgorithmError(f"{path}: refused: {stage} raised {type(e).__name__}: {e}"
                                      ) from None
+
+
+def _stage_sig(stage, ns):
+    from numba import types
+
+    f64v = types.Array(types.float64, 1, "C")
+    if stage == "kernel":
+        f32 = types.Array(types.float32, 2, "C")
+        return (f32, f32, f32, f64v, types.Array(types.float64, 2, "C"))
+    if stage == "gain_curve":
+        return (types.float64, f64v)
+    return (types.float64, f64v, f64v)
 
 
 def _drive_curve(fn, levels, p):

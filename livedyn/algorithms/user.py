@@ -31,7 +31,9 @@ are livedyn's built-ins:
     parameter array ``p`` and the state ``s`` (channels, nstate) float64.
 
 ``p`` is the float64 parameter array and ``P`` an enumeration livedyn puts into the module whose
-members name its slots (``p[P.threshold]``). ``s`` is this channel's row of declared state:
+members name its slots (``p[P.threshold]``, and ``p[P.samplerate]``). ``s`` is this channel's
+row of declared state (the detector's rows, per key channel, are apart from the smoother's, per
+gain channel):
 ``STATE = ["env", "peak"]`` gives ``s[S.env]`` and ``s[S.peak]``, zero at start, kept between
 blocks (``STATE = 8`` gives eight unnamed slots). Other declarations: ``NAME``, ``BOOST = True``
 (gain above makeup is intended), ``BLOCK = n`` and ``LATENCY = n`` (a block-based design's own
@@ -347,7 +349,7 @@ def _compile_kernel(path, fn, nstate):
 
     def block(x, key, out, p, st, ring, tr):
         ncols = st.shape[1]
-        s = st[NROWS:].reshape((ncols, nstate))
+        s = st[NROWS:NROWS + nstate].reshape((ncols, nstate))
         jit(x, key, out, p, s)
         st[S_FRAMES, 0] += x.shape[0]
 

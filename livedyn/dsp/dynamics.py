@@ -105,7 +105,7 @@ def dynamics_block(x, key, out, p, st, ring, tr):
     hold_n = math.floor(p[P_HOLD] * fs / 1000.0 + 0.5)
     user_det = p[P_USER_DETECTOR] != 0.0
     user_smooth = p[P_USER_SMOOTHER] != 0.0
-    nstate = st.shape[0] - NROWS  # a user algorithm's declared state per channel
+    nstate = (st.shape[0] - NROWS) // 2  # a user algorithm's declared state per channel
     s_off = NROWS * st.shape[1]
     rms = int(p[P_DETECTOR]) == DETECTOR_RMS and not user_det
     comp_like = law == LAW_COMPRESSOR or law == LAW_USER
@@ -303,7 +303,8 @@ def dynamics_block(x, key, out, p, st, ring, tr):
 
             y = st[R_Y, g]
             if user_smooth:
-                y = call_stage(p[P_USER_SMOOTHER], gc, p, st, s_off + g * nstate)
+                # the smoother's rows follow the detector's: (ncols + g) of the state block
+                y = call_stage(p[P_USER_SMOOTHER], gc, p, st, s_off + (st.shape[1] + g) * nstate)
             elif linear:
                 y = gc
             elif decoupled:

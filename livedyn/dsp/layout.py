@@ -6,10 +6,11 @@ Every fused kernel has the signature ``kernel(x, key, out, p, st, ring, tr)``:
 ``key``   float32 (frames, key_channels) key input (the caller passes ``x`` when the key is main)
 ``out``   float32 (frames, channels) output, written by the kernel
 ``p``     float64 (NPARAM,) parameter targets (see livedyn.params)
-``st``    float64 (NROWS + nstate, ncols) state; ``ncols = max(channels, key_channels, 12)``;
+``st``    float64 (NROWS + 2 nstate, ncols) state; ``ncols = max(channels, key_channels, 12)``;
           rows from NROWS on hold a user algorithm's declared state, read as a C-ordered
-          (ncols, nstate) block: channel c's ``nstate`` slots start at element
-          ``NROWS * ncols + c * nstate`` of the flat array
+          (2 ncols, nstate) block: key channel j's detector row starts at element
+          ``NROWS * ncols + j * nstate`` of the flat array, gain channel g's smoother row at
+          ``NROWS * ncols + (ncols + g) * nstate``; a whole kernel sees the first ncols rows
 ``ring``  float64 (ring_len, RING_COLS_PER_CHANNEL * channels) delay lines and limiter queues
 ``tr``    float64 (NTRACE, frames, ncols) per-stage trace, or shape (NTRACE, 0, ncols) for none
 

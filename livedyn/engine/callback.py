@@ -68,6 +68,7 @@ U_GUARD_XF, U_BUDGET_NS = 57, 58
 U_JOB = 64  # the kernel job block of slot 0 lives at ud[U_JOB:U_JOB + JOB_SIZE]
 UD_SIZE = U_JOB + JOB_SIZE
 GUARD_OK, GUARD_FADING, GUARD_BYPASSED = 0, 1, 2
+SWAP_BIT = 16  # set in a block's flags column of the elapsed-time ring when it ran two versions
 
 MONITOR_OUT, MONITOR_KEY, MONITOR_DELTA = 0, 1, 2
 
@@ -582,5 +583,5 @@ def native_callback(inp_ptr, out_ptr, frames, time_info, status, user):
     b = (stats[S_BLOCKS] - 1) % rl
     rng[b, 0] = el
     rng[b, 1] = interval
-    rng[b, 2] = np.int64(status)
+    rng[b, 2] = np.int64(status) | (ud[U_SWAP_ACTIVE] << SWAP_BIT)
     return 0  # paContinue

@@ -31,11 +31,13 @@ Equations
 
    BS.1770-4 prints the coefficients for 48 kHz only (Tables 1 and 2). The prototype values
    below were obtained by inverting the bilinear transform on those tables; at 48 kHz the
-   formulas give the tables back, at other rates the same analog response. (The shelf and
-   high-pass figures are the ones of pyloudnorm's "DeMan" filter class, C. J. Steinmetz and
+   formulas give the tables back, at other rates the same analog response. The figures f0, Q,
+   Vh, Vb agree with those of pyloudnorm's "DeMan" filter class (pyloudnorm: C. J. Steinmetz,
    J. D. Reiss, "pyloudnorm: A simple yet flexible loudness meter in Python", AES Convention
-   150, 2021, recalled from memory; the high-pass gain g keeps the 48 kHz table's unnormalised
-   numerator 1, -2, 1 at every rate.)
+   150, 2021; citation recalled from memory). The high-pass gain g is the value that makes
+   the 48 kHz numerator exactly the table's 1, -2, 1, and is kept at every rate (the same
+   analog filter); pyloudnorm keeps the digital numerator 1, -2, 1 instead, which differs by
+   0.004 dB at 44.1 kHz.
 
 2. Momentary loudness (BS.1770-4 eqs. 1-2; the 400 ms window is also EBU Tech 3341's
    "momentary" time scale): per 100 ms sub-block of H = round(fs / 10) samples, the mean of
@@ -76,7 +78,6 @@ import math
 
 import numba as nb
 
-from livedyn.params import P_SAMPLERATE  # slot of the sample rate, written by livedyn
 
 NAME = "loudness-ducker"
 PARAMS = [
@@ -148,7 +149,7 @@ def kernel(x, key, out, p, s):
     frames = x.shape[0]
     ch = x.shape[1]
     nk = key.shape[1]
-    fs = p[P_SAMPLERATE]
+    fs = p[P.samplerate]
     sb0, sb1, sb2, sa1, sa2, hb0, hb1, hb2, ha1, ha2 = kweighting(fs)
     hop = math.floor(fs / 10.0 + 0.5)  # samples per 100 ms sub-block
     t_att = p[P.attack]  # noqa: F821 (P and S are injected by livedyn)

@@ -50,7 +50,6 @@ speech_key.py for how to cache coefficients in STATE when a stage needs costlier
 """
 import math
 
-from livedyn.params import P_SAMPLERATE  # slot of the sample rate, written by livedyn
 
 NAME = "program-release"
 PARAMS = [
@@ -67,7 +66,7 @@ STATE = ["fast", "slow"]  # the two envelopes, dB (<= 0), per gain channel
 
 
 def smoother(gain_db, p, s):
-    fs = p[P_SAMPLERATE]
+    fs = p[P.samplerate]
     # One-pole coefficients a = exp(-1 / (tau fs)), tau in ms; tau = 0 (attack only) follows at
     # once. Computed per sample here for clarity: four exp() are cheap enough.
     t_att = p[P.attack]  # noqa: F821 (P and S are injected by livedyn)

@@ -54,7 +54,6 @@ import math
 
 import numba as nb
 
-from livedyn.params import P_SAMPLERATE  # slot of the sample rate, written by livedyn
 
 NAME = "speech-key"
 PARAMS = [
@@ -113,7 +112,7 @@ def design(s, low, high, tau_ms, fs):
 
 
 def detector(k, p, s):
-    fs = p[P_SAMPLERATE]
+    fs = p[P.samplerate]
     low = p[P.low]  # noqa: F821
     high = p[P.high]  # noqa: F821
     tau = p[P.rms_time]  # noqa: F821

@@ -1,0 +1,220 @@
+"""Load-time checks of user algorithm files, the starting templates, the shipped examples, and
+the commands around them (check, new-algorithm, render, bench kernels, run --watch)."""
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import livedyn
+from livedyn.algorithms.template import BODIES, template_text
+from livedyn.algorithms.user import UserAlgorithmError, load
+
+ROOT = Path(__file__).resolve().parent.parent
+EXAMPLES = sorted((ROOT / "livedyn" / "examples").glob("*.py"))
+LIVEDYN = Path(sys.executable).parent / "livedyn"
+
+
+def write(tmp_path, text, name="algo.py"):
+    f = tmp_path / name
+    f.write_text(textwrap.dedent(text))
+    return f
+
+
+def test_three_examples_ship():
+    assert [p.name for p in EXAMPLES] == ["loudness_ducker.py", "program_release.py",
+                                          "speech_key.py"]
+
+
+@pytest.mark.parametrize("path", EXAMPLES, ids=lambda p: p.stem)
+def test_each_example_passes_the_checks_and_renders(path, tmp_path):
+    from livedyn.render import Setup, render
+    from livedyn.wavio import read_wav, write_wav
+
+    alg = load(path)
+    report = "\n".join(alg.report)
+    for words in ("bounds-checked pass: no out-of-bounds access", "allocation: none",
+                  "finite output: yes", "gain above makeup: none", "bit-identical",
+                  "time per frame"):
+        assert words in report, report
+    rng = np.random.default_rng(5)
+    x = (0.3 * rng.standard_normal((24000, 2))).astype(np.float32)
+    write_wav(tmp_path / "in.wav", x, 48000)
+    render(tmp_path / "in.wav", tmp_path / "out.wav", Setup(algorithm=str(path)))
+    y, fs = read_wav(tmp_path / "out.wav")
+    assert fs == 48000 and y.shape == x.shape and np.isfinite(y).all()
+    assert np.max(np.abs(y)) <= np.max(np.abs(x)) + 1e-6  # no boost (makeup 0)
+
+
+@pytest.mark.parametrize("stage", list(BODIES))
+def test_each_starting_template_loads_and_passes(stage, tmp_path):
+    f = write(tmp_path, template_text("start", stage))
+    alg = load(f)
+    assert alg.stages == (stage,)
+    assert any("time per frame" in line for line in alg.report)
+
+
+def test_a_declared_block_based_kernel_is_accepted_and_reported(tmp_path):
+    # gain from the peak of fixed 256-sample frames, applied one frame late: the output depends
+    # on where the frames fall, not on the host block, but a design that chooses per host block
+    # is refused unless it declares BLOCK (next test)
+    text = '''
+    PARAMS = ["threshold"]
+    BLOCK = 64
+    LATENCY = 0
+
+    def kernel(x, key, out, p, s):
+        pk = 0.0
+        for n in range(x.shape[0]):
+            pk = max(pk, abs(x[n, 0]))
+        g = 1.0 if pk < 0.5 else 0.5
+        for n in range(x.shape[0]):
+            for c in range(x.shape[1]):
+                out[n, c] = x[n, c] * g
+    '''
+    alg = load(write(tmp_path, text))
+    line = next(ln for ln in alg.report if ln.startswith("block size"))
+    assert "block-based, frame 64, latency 0 samples (declared)" in line
+    # the same without the declaration is refused, naming the reason
+    undeclared = text.replace("BLOCK = 64\n", "").replace("LATENCY = 0\n", "")
+    with pytest.raises(UserAlgorithmError, match="depends on the host block size"):
+        load(write(tmp_path, undeclared, "undeclared.py"))
+
+
+def test_boost_is_accepted_when_declared(tmp_path):
+    text = 'PARAMS = ["threshold"]\n{decl}\ndef gain_curve(x, p):\n    return 3.0\n'
+    with pytest.raises(UserAlgorithmError, match=r"\+3.00 dB above makeup"):
+        load(write(tmp_path, text.format(decl="")))
+    alg = load(write(tmp_path, text.format(decl="BOOST = True"), "declared.py"))
+    assert any("+3.00 dB (declared: BOOST = True)" in ln for ln in alg.report), alg.report
+
+
+def test_a_kernel_that_leaves_output_unwritten_is_refused(tmp_path):
+    text = '''
+    PARAMS = ["threshold"]
+    def kernel(x, key, out, p, s):
+        for n in range(x.shape[0]):
+            out[n, 0] = x[n, 0]
+    '''
+    with pytest.raises(UserAlgorithmError, match="not finite.*write every out"):
+        load(write(tmp_path, text))
+
+
+def test_allocation_per_call_is_reported(tmp_path):
+    text = '''
+    import numpy as np
+    PARAMS = ["threshold", "ratio"]
+    def gain_curve(x, p):
+        a = np.zeros(4)
+        a[0] = min(0.0, p[P.threshold] - x)
+        return a[0] * 0.0
+    '''
+    alg = load(write(tmp_path, text))
+    assert any("gain_curve allocate(s) on the heap" in ln for ln in alg.report), alg.report
+    # negative control: the same without the array reports none
+    plain = load(write(tmp_path, "PARAMS = ['threshold', 'ratio']\n"
+                                 "def gain_curve(x, p):\n    return 0.0\n", "plain.py"))
+    assert "allocation: none per call" in plain.report
+
+
+def test_detector_and_smoother_state_rows_are_apart(tmp_path):
+    # both stages write slot 0 of their own row; if they shared it, the detector would see the
+    # smoother's (negative, dB) value and the level would collapse
+    text = '''
+    PARAMS = ["threshold", "ratio", "knee"]
+    STATE = ["v"]
+    def detector(k, p, s):
+        if s[S.v] < 0.0:
+            return -1.0e3
+        s[S.v] = max(abs(k), 0.999 * s[S.v])
+        return s[S.v]
+    def smoother(g, p, s):
+        s[S.v] = g - 1.0
+        return g
+    '''
+    alg = load(write(tmp_path, text))
+    proc = livedyn.Processor(alg, 48000, 1, threshold=-20, ratio=4, knee=0)
+    x = np.full((4800, 1), 0.5, np.float32)
+    y, tr = proc.process_traced(x)
+    assert np.all(tr["detector_db"][100:] > -7.0)  # 0.5 -> -6 dB, held by the detector's row
+
+
+def test_cli_check_and_full_message(tmp_path):
+    f = write(tmp_path, "PARAMS = ['threshold']\ndef gain_curve(x, p):\n    return 'a' + x\n")
+    r = subprocess.run([str(LIVEDYN), "check", str(f)], capture_output=True, text=True,
+                       timeout=300)
+    assert r.returncode == 2
+    err = [ln for ln in r.stderr.splitlines() if ln.startswith("livedyn: error:")]
+    assert len(err) == 1 and "algo.py:3" in err[0] and "--full" in err[0], r.stderr
+    r = subprocess.run([str(LIVEDYN), "check", str(f), "--full"], capture_output=True,
+                       text=True, timeout=300)
+    assert r.returncode == 2 and "No implementation of function" in r.stderr
+    assert len(r.stderr.splitlines()) > 5  # the whole compiler message, on request
+
+
+def test_cli_new_algorithm_never_overwrites(tmp_path):
+    r = subprocess.run([str(LIVEDYN), "new-algorithm", "soft"], capture_output=True, text=True,
+                       timeout=300, cwd=tmp_path)
+    assert r.returncode == 0, r.stderr
+    text = (tmp_path / "soft.py").read_text()
+    r = subprocess.run([str(LIVEDYN), "new-algorithm", "soft"], capture_output=True, text=True,
+                       timeout=300, cwd=tmp_path)
+    assert r.returncode == 2 and "exists" in r.stderr
+    assert (tmp_path / "soft.py").read_text() == text
+    r = subprocess.run([str(LIVEDYN), "check", "soft.py"], capture_output=True, text=True,
+                       timeout=300, cwd=tmp_path)
+    assert r.returncode == 0 and "checks passed" in r.stdout, r.stderr
+
+
+def test_bench_kernels_times_a_file_beside_the_compressor(tmp_path):
+    out = tmp_path / "b.json"
+    r = subprocess.run([str(LIVEDYN), "bench", "kernels", "--algorithm",
+                        str(ROOT / "livedyn" / "examples" / "program_release.py"), "--quick",
+                        "--json", str(out)], capture_output=True, text=True, timeout=600,
+                       cwd=ROOT)
+    assert r.returncode == 0, r.stderr
+    rows = json.loads(out.read_text())["kernels"]["rows"]
+    names = {row["algorithm"].split()[0] for row in rows}
+    assert names == {"program-release", "compressor"} or len(names) == 2, names
+    for row in rows:
+        assert row["ns_per_frame"] > 0 and row["over_baseline"] > 0
+    base = [row for row in rows if row["algorithm"] == "compressor"]
+    assert all(row["over_baseline"] == 1.0 for row in base)
+
+
+def test_cli_run_watch_hears_an_edit_of_the_file(tmp_path):
+    """The new user's path: a gain curve in a file, run live headless on the demo scenario,
+    edited while it plays; the run reports the new version and no failed load."""
+    f = write(tmp_path, template_text("mine", "gain_curve"), "mine.py")
+    stats = tmp_path / "stats.json"
+    proc = subprocess.Popen([str(LIVEDYN), "run", "--headless", "--key-demo", "--algorithm",
+                             str(f), "--watch", "--seconds", "9", "--no-ui", "--stats-json",
+                             str(stats)], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, cwd=tmp_path)
+    t_end = time.monotonic() + 120
+    text = f.read_text()
+    edited = False
+    lines = []
+    while time.monotonic() < t_end and proc.poll() is None:
+        line = proc.stdout.readline()
+        lines.append(line)
+        if not edited and line.startswith("watching"):
+            time.sleep(2.0)
+            tmp = f.with_name("mine.py.part")
+            tmp.write_text(text.replace("0.0, 1.0, 0.75", "0.0, 1.0, 0.5"))
+            tmp.replace(f)
+            edited = True
+    out, err = proc.communicate(timeout=60)
+    lines += out.splitlines()
+    assert proc.returncode == 0, err
+    assert edited
+    assert any("info: mine.py: version 2 running" in ln for ln in lines), "".join(lines)
+    snap = json.loads(stats.read_text())
+    assert snap["watch"]["versions_swapped"] == 1 and snap["watch"]["failed_loads"] == 0
+    assert snap["watch"]["swaps"][0]["carried"]  # the running values were carried over
