@@ -43,6 +43,8 @@ def theory_output_db(proc, level_db):
     """The output level the static curve predicts for a steady input (or key) level."""
     v = proc.values()
     law = proc.algorithm.law
+    if proc.algorithm.kind == "user":
+        return float("nan")  # a whole kernel of a user's: no curve livedyn knows
     if proc.algorithm.kind == "limiter":
         return min(level_db, v["ceiling"])
     slope = ratio_to_slope(v.get("ratio", 1.0))

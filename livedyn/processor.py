@@ -149,10 +149,14 @@ class Processor:
     @property
     def latency_samples(self) -> int:
         """Delay of the main path in samples: the lookahead (plus the true-peak filter delay)."""
+        return self.latency_for(self.p)
+
+    def latency_for(self, p) -> int:
+        """The latency these parameter values ``p`` would give (``p`` is only read)."""
         if self.algorithm.kind == "user":
             return int(self.algorithm.latency)
-        d = int(math.floor(self.p[P_LOOKAHEAD] * self.samplerate / 1000.0 + 0.5))
-        if self.algorithm.kind == "limiter" and self.p[P_TRUE_PEAK] > 0.5:
+        d = int(math.floor(p[P_LOOKAHEAD] * self.samplerate / 1000.0 + 0.5))
+        if self.algorithm.kind == "limiter" and p[P_TRUE_PEAK] > 0.5:
             d += self._tp_delay
         return d
 

@@ -867,3 +867,50 @@ def test_model_on_a_real_engine():
             eng.stop()
         st.terminate()
         server.stop()
+
+
+def test_a_swapped_in_version_and_its_notices_reach_the_console(tmp_path):
+    """With --watch the engine swaps in a new version of a file (maybe with new parameters) and
+    posts one-line notices; the console shows them and lists the new version's parameters."""
+    v1 = tmp_path / "mine.py"
+    v1.write_text("PARAMS = ['threshold', 'attack', 'release']\n"
+                  "def gain_curve(x, p):\n    return min(0.0, p[P.threshold] - x)\n")
+    e = FakeEngine(str(v1), threshold=-25)
+    e.notices = []
+    e.take_notices = lambda: [e.notices.pop(0)] if e.notices else []
+    m = ConsoleModel(e)
+    assert "depth" not in m.names
+    v2 = tmp_path / "mine2.py"
+    v2.write_text("PARAMS = ['threshold', 'attack', 'release', Param('depth', 'dB', 0, 30, 9)]\n"
+                  "def gain_curve(x, p):\n    return max(-p[P.depth], min(0.0, p[P.threshold] - x))\n")
+    new = livedyn.Processor(str(v2), FS, 2, threshold=-25)
+    e.proc = new
+    e.notices.append(("info", "mine.py: version 2 running (loaded, checked and swapped in)"))
+    m.tick()
+    assert "version 2 running" in m.status.text and m.status.kind == "info"
+    assert "depth" in m.names and m.schema is new.schema
+    assert m.value("threshold") == -25
+    m.run_command("depth 12")
+    assert e.calls[-1] == ("depth", 12.0)
+    e.notices.append(("error", "mine.py:3: syntax error: invalid syntax -- still running the "
+                               "previous version"))
+    m.tick()
+    assert_one_error_line(m, "mine.py:3", "still running the previous version")
+
+
+def test_save_from_a_user_file_writes_a_preset_naming_the_file(tmp_path):
+    from livedyn import presets as pr_mod
+
+    f = tmp_path / "algos" / "mine.py"
+    f.parent.mkdir()
+    f.write_text("PARAMS = ['threshold', 'attack', 'release']\n"
+                 "def gain_curve(x, p):\n    return min(0.0, p[P.threshold] - x)\n")
+    e = FakeEngine(str(f), threshold=-31)
+    m = ConsoleModel(e)
+    m.run_command(f"save {tmp_path / 'mine-preset'}")
+    assert m.status.kind == "info", m.status
+    back = pr_mod.load(tmp_path / "mine-preset.toml")
+    assert back.algorithm_file == f.resolve()
+    assert back.values["threshold"] == -31
+    text = (tmp_path / "mine-preset.toml").read_text()
+    assert 'algorithm_file = "algos/mine.py"' in text  # relative to the preset's folder

@@ -171,3 +171,17 @@ def test_a_user_file_live_equals_its_offline_render(tmp_path, jack_server):
     off = np.clip(off, -10 ** (-1 / 20), 10 ** (-1 / 20))  # the engine's last stage: -1 dBFS
     np.testing.assert_array_equal(y[:n], off[:n])
     assert np.abs(y[:n]).max() > 0.01
+
+
+def test_defaults_set_the_files_own_defaults_and_are_validated(tmp_path):
+    text = ("PARAMS = ['key', 'threshold', 'range']\nDEFAULTS = @@\n"
+            "def gain_curve(x, p):\n    return max(-p[P.range], min(0.0, p[P.threshold] - x))\n")
+    f = write(tmp_path, text.replace("@@", "{'key': 'external', 'range': 9}"))
+    alg = load(f)
+    assert alg.schema["range"].default == 9 and alg.needs_key
+    assert livedyn.Processor(alg, 48000, 2, key_channels=1).get("key") == 1.0  # external
+    assert livedyn.Processor(alg, 48000, 2).get("key") == 0.0  # no key channels: main
+    with pytest.raises(UserAlgorithmError, match="DEFAULTS: range = 999 dB: out of range"):
+        load(write(tmp_path, text.replace("@@", "{'range': 999}"), "bad.py"))
+    with pytest.raises(UserAlgorithmError, match="DEFAULTS: 'ratio' is not one of"):
+        load(write(tmp_path, text.replace("@@", "{'ratio': 2}"), "bad2.py"))

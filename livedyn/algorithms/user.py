@@ -35,7 +35,9 @@ members name its slots (``p[P.threshold]``, and ``p[P.samplerate]``). ``s`` is t
 row of declared state (the detector's rows, per key channel, are apart from the smoother's, per
 gain channel):
 ``STATE = ["env", "peak"]`` gives ``s[S.env]`` and ``s[S.peak]``, zero at start, kept between
-blocks (``STATE = 8`` gives eight unnamed slots). Other declarations: ``NAME``, ``BOOST = True``
+blocks (``STATE = 8`` gives eight unnamed slots). Other declarations: ``NAME``,
+``DEFAULTS = {"key": "external", "range": 9}`` (the file's own defaults for its parameters,
+livedyn's included), ``BOOST = True``
 (gain above makeup is intended), ``BLOCK = n`` and ``LATENCY = n`` (a block-based design's own
 frame size and its latency in samples).
 
@@ -59,7 +61,7 @@ from pathlib import Path
 import numpy as np
 
 from ..params import (
-    ALL, LAW_COMPRESSOR, LAW_USER, NPARAM, P_SAMPLERATE, USER_SLOT0, Param, ParamError, Schema,
+    ALL, KEY_EXTERNAL, LAW_COMPRESSOR, LAW_USER, NPARAM, P_SAMPLERATE, USER_SLOT0, Param, ParamError, Schema,
 )
 
 __all__ = ["UserAlgorithmError", "load", "user_param", "is_user_file", "STAGES", "MAX_STATE"]
@@ -156,7 +158,8 @@ def _build(path, source, digest):
         raise UserAlgorithmError(f"{path}: defines kernel and also {others}: a whole kernel "
                                  "replaces the stages; keep one or the other")
 
-    schema, slots = _schema(path, getattr(module, "PARAMS", None), fns)
+    schema, slots = _schema(path, getattr(module, "PARAMS", None), fns,
+                            getattr(module, "DEFAULTS", {}))
     module.P = enum.IntEnum("P", slots)
     names, nstate = _state(path, getattr(module, "STATE", 0))
     if names:
@@ -170,8 +173,9 @@ def _build(path, source, digest):
 
     name = str(getattr(module, "NAME", path.stem))
     desc = (module.__doc__ or "").strip().splitlines()[0] if module.__doc__ else ""
+    needs_key = "key" in schema and int(schema["key"].default) == KEY_EXTERNAL
     common = dict(source=path, state_size=nstate, boost=boost, block=block, latency=latency,
-                  stages=tuple(fns), digest=digest)
+                  stages=tuple(fns), digest=digest, needs_key=needs_key)
     if "kernel" in fns:
         blk, job = _compile_kernel(path, fns["kernel"], nstate)
         return Algorithm(name, desc or f"user kernel {path.name}", schema, "user", 0,
@@ -184,7 +188,7 @@ def _build(path, source, digest):
                      user_smoother=compiled.get("smoother"), **common)
 
 
-def _schema(path, params, fns):
+def _schema(path, params, fns, defaults):
     if params is None:
         raise UserAlgorithmError(f"{path}: defines no PARAMS list (livedyn's parameter names "
                                  "and Param(...) entries of its own)")
@@ -228,6 +232,17 @@ def _schema(path, params, fns):
         if n not in out:
             out[n] = ALL[n]
             slots[n] = ALL[n].slot
+    if not isinstance(defaults, dict):
+        raise UserAlgorithmError(f"{path}: DEFAULTS = {defaults!r}: expected a dict of "
+                                 "parameter name to value")
+    for n, v in defaults.items():
+        if n not in out:
+            raise UserAlgorithmError(f"{path}: DEFAULTS: {n!r} is not one of this file's "
+                                     f"parameters ({', '.join(out)})")
+        try:
+            out[n] = out[n].with_default(out[n].parse(v))
+        except ParamError as e:
+            raise UserAlgorithmError(f"{path}: DEFAULTS: {e}") from None
     slots["samplerate"] = P_SAMPLERATE  # readable by every stage, not a control
     return Schema(out), slots
 

@@ -631,14 +631,18 @@ class ConsoleModel:
         from .. import algorithms, presets
 
         name = getattr(self.algorithm, "name", "")
-        if name not in algorithms.BUILTINS:
-            raise ConsoleError(f"save: {name!r} is not a built-in algorithm; only built-in "
-                               "algorithms can be saved from the console")
+        source = getattr(self.algorithm, "source", None)
+        if name not in algorithms.BUILTINS and source is None:
+            raise ConsoleError(f"save: {name!r} is neither built in nor an algorithm file")
         target = Path(str(path)).expanduser()
         if target.suffix == "":
             target = target.with_name(target.name + presets.SUFFIX)
-        pr = presets.Preset(name, dict(self.slots[self.active]),
-                            f"saved from the console, slot {self.active.upper()}")
+        desc = f"saved from the console, slot {self.active.upper()}"
+        if source is not None:  # the preset names the file and carries its values
+            pr = presets.Preset(Path(source).stem, dict(self.slots[self.active]), desc,
+                                algorithm_file=Path(source))
+        else:
+            pr = presets.Preset(name, dict(self.slots[self.active]), desc)
         presets.save(pr, target)
         self.info(f"saved slot {self.active.upper()} to {target}")
 

@@ -321,6 +321,8 @@ class Engine:
         return self.jobs[int(self.ud[cb.U_KSLOT])]
 
     def _fill_job(self, job, proc, y):
+        if proc.st.shape[1] * NTRACE * self.maxf > len(self.trace):
+            raise EngineError("internal: trace buffer too small for the new processor")
         job[cb.J_X], job[cb.J_K], job[cb.J_Y] = (self.x.ctypes.data,
                                                  (self.k if self.kch else self.x).ctypes.data,
                                                  y.ctypes.data)
@@ -332,8 +334,6 @@ class Engine:
         job[cb.J_RING], job[cb.J_RINGR], job[cb.J_RINGC] = ring.ctypes.data, *ring.shape
         job[cb.J_TR], job[cb.J_TRN], job[cb.J_TRC] = self.trace.ctypes.data, 0, st.shape[1]
         job[cb.J_CALLS] = 0
-        if st.shape[1] * NTRACE * self.maxf > len(self.trace):
-            raise EngineError("internal: trace buffer too small for the new processor")
 
     # ---- life cycle ---------------------------------------------------------------------------
     def _warm_callback(self):
@@ -543,12 +543,7 @@ class Engine:
             return seq
 
     def _latency_of(self, p):
-        saved = self.proc.p.copy()
-        try:
-            self.proc.p[:] = p
-            return self.proc.latency_samples
-        finally:
-            self.proc.p[:] = saved
+        return self.proc.latency_for(p)  # reads p only: the live array is not touched
 
     def get(self, name):
         return float(self.pend[self.proc.schema[name].slot])
@@ -567,7 +562,14 @@ class Engine:
         from .. import presets
 
         pr = presets.load(name_or_path)
-        if pr.algorithm != self.proc.algorithm.name:
+        src = self.proc.algorithm.source
+        if pr.algorithm_file is not None or src is not None:
+            if pr.algorithm_file is None or src is None or \
+                    Path(pr.algorithm_file).resolve() != Path(src).resolve():
+                raise ParamError(f"{name_or_path}: a preset of "
+                                 f"{pr.algorithm_file or pr.algorithm}, but this engine runs "
+                                 f"{src or self.proc.algorithm.name}")
+        elif pr.algorithm != self.proc.algorithm.name:
             raise ParamError(f"{name_or_path}: a {pr.algorithm} preset, but this engine runs "
                              f"the {self.proc.algorithm.name}")
         trial = self.pend.copy()

@@ -67,6 +67,9 @@ PARAMS = [
     Param("depth", "dB", 0, 60, 12,  # noqa: F821
           help="attenuation of the main signal while the weighted key is above threshold"),
 ]
+# A ducker listens to its key input by default (livedyn falls back to the main input when the
+# stream has no key channels).
+DEFAULTS = {"key": "external"}
 STATE = [
     "c_low", "c_high", "c_fs", "c_tau",  # the parameter values the coefficients were made for
     "hb0", "hb1", "hb2", "ha1", "ha2",  # high-pass coefficients (a0 = 1)
