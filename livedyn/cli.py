@@ -128,7 +128,10 @@ def cmd_measure(args):
             print(f"{r.level_db:16.1f}{r.signal:>8}{r.measured_db:14.2f}{r.theory_db:9.2f}"
                   f"{r.error_db:11.3f}")
         sq = [abs(r.error_db) for r in rows if r.signal == "square"]
-        if sq:
+        if sq and all(s != s for s in sq):  # all NaN: a whole user kernel
+            print("(no theory column: livedyn does not know a whole kernel's curve; the key is "
+                  "the main input here)")
+        elif sq:
             print(f"largest square-wave error: {max(sq):.3f} dB")
         result["curve"] = [r.__dict__ for r in rows]
         if want_plot:

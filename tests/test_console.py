@@ -914,3 +914,18 @@ def test_save_from_a_user_file_writes_a_preset_naming_the_file(tmp_path):
     assert back.values["threshold"] == -31
     text = (tmp_path / "mine-preset.toml").read_text()
     assert 'algorithm_file = "algos/mine.py"' in text  # relative to the preset's folder
+
+
+def test_curve_of_a_user_gain_curve_follows_the_files_equation(tmp_path, pipe):
+    from livedyn.analysis import theory_output_db
+
+    f = tmp_path / "half.py"
+    f.write_text("PARAMS = ['threshold', 'attack', 'release']\n"
+                 "def gain_curve(x, p):\n    return min(0.0, 0.5 * (p[P.threshold] - x))\n")
+    e = FakeEngine(str(f), threshold=-30)
+    m = ConsoleModel(e)
+    m.run_command("threshold -20")
+    # the curve the console draws: 10 dB over the (new) threshold -> 5 dB of reduction
+    assert theory_output_db(m.curve_view(), -10.0) == pytest.approx(-15.0)
+    _, text = render(e, pipe, 120, 40, model=m)
+    assert "panel error" not in text and "curve" in text.lower()

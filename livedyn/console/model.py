@@ -137,12 +137,24 @@ class _CurveView:
     """What :func:`livedyn.analysis.theory_output_db` reads from a Processor: the algorithm and
     its values (here the live values of the active slot)."""
 
-    def __init__(self, algorithm, values):
+    def __init__(self, algorithm, values, p=None, schema=None):
         self.algorithm = algorithm
         self._values = values
+        self._p, self._schema = p, schema
 
     def values(self):
         return dict(self._values)
+
+    @property
+    def p(self):
+        """The parameter array with these values (a user gain curve reads it)."""
+        import numpy as np
+
+        p = np.array(self._p, dtype=np.float64)
+        for name, v in self._values.items():
+            if name in self._schema:
+                p[self._schema[name].slot] = v
+        return p
 
 
 class ConsoleModel:
@@ -264,7 +276,8 @@ class ConsoleModel:
 
     def curve_view(self):
         """An object for :func:`livedyn.analysis.theory_output_db` with the live values."""
-        return _CurveView(self.algorithm, self.live_values())
+        return _CurveView(self.algorithm, self.live_values(), getattr(self.proc, "p", None),
+                          self.schema)
 
     def curve_output_db(self, level_db) -> float:
         from ..analysis import theory_output_db
