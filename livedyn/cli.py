@@ -752,7 +752,7 @@ def main(argv=None):
         return EXIT_USAGE
     from . import dsp
 
-    dsp.announce = dsp.announce_on_stderr
+    dsp.announce = dsp.announce_on_stdout
     try:
         return args.func(args)
     except _user_errors() as e:

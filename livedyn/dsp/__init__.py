@@ -4,7 +4,7 @@ import sys
 import time
 
 #: Called with one line of text when a kernel is about to be compiled (not loaded from the
-#: cache). The command line sets it to print on stderr; library users may set their own.
+#: cache). The command line sets it to print on stdout; library users may set their own.
 announce = None
 
 
@@ -44,5 +44,7 @@ def warm(dispatcher, label, *args):
         announce(f"compiled the {label} in {time.perf_counter() - t0:.1f} s")
 
 
-def announce_on_stderr(text):
-    print(f"livedyn: {text}", file=sys.stderr, flush=True)
+def announce_on_stdout(text):
+    """Compile notices go to standard output, so that standard error holds only the one-line
+    error of a command that fails."""
+    print(f"livedyn: {text}", file=sys.stdout, flush=True)
