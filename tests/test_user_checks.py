@@ -46,7 +46,11 @@ def test_each_example_passes_the_checks_and_renders(path, tmp_path):
     rng = np.random.default_rng(5)
     x = (0.3 * rng.standard_normal((24000, 2))).astype(np.float32)
     write_wav(tmp_path / "in.wav", x, 48000)
-    render(tmp_path / "in.wav", tmp_path / "out.wav", Setup(algorithm=str(path)))
+    key = None
+    if "key" in alg.schema:  # a keyed example renders with a key file of its own
+        key = tmp_path / "key.wav"
+        write_wav(key, (0.2 * rng.standard_normal((24000, 1))).astype(np.float32), 48000)
+    render(tmp_path / "in.wav", tmp_path / "out.wav", Setup(algorithm=str(path)), key_path=key)
     y, fs = read_wav(tmp_path / "out.wav")
     assert fs == 48000 and y.shape == x.shape and np.isfinite(y).all()
     assert np.max(np.abs(y)) <= np.max(np.abs(x)) + 1e-6  # no boost (makeup 0)
