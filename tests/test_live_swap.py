@@ -196,6 +196,10 @@ BAD = {
     "nan": ("PARAMS = ['threshold']\ndef gain_curve(x, p):\n"
             "    return (x - p[P.threshold]) / 0.0 if x > p[P.threshold] else 0.0\n",
             ["not finite"]),
+    "nan kernel": ("import math\nPARAMS = ['threshold']\ndef kernel(x, key, out, p, s):\n"
+                   "    for n in range(x.shape[0]):\n        for c in range(x.shape[1]):\n"
+                   "            out[n, c] = math.nan if x[n, c] > 0.9 else x[n, c]\n",
+                   ["not finite"]),
     "boost": ("PARAMS = ['threshold']\ndef gain_curve(x, p):\n    return 6.0\n",
               ["+6.00 dB above makeup", "BOOST = True"]),
     "slow": ("import math\nPARAMS = ['threshold']\ndef gain_curve(x, p):\n"
