@@ -80,6 +80,8 @@ LAW_USER = 4  # a user-written gain curve, called through P_USER_CURVE
 # Glide time constant of "sample"-updated parameters, ms (a choice of ours: fast enough to feel
 # immediate, slow enough that a 20 dB threshold jump makes no audible click).
 GLIDE_MS = 10.0
+# Largest latency a user kernel may declare, samples (the live engine's dry line holds it).
+MAX_USER_LATENCY = 16384
 # Crossfade when the lookahead (delay) changes, ms.
 DELAY_XFADE_MS = 10.0
 # Upper bound of the lookahead control, ms; the delay line is allocated for it.

@@ -159,6 +159,12 @@ def test_ten_edits_while_streaming_take_effect_without_a_step(tmp_path, jack_ser
     n_xf = int(round(10.0 * FS / 1000))
     bound = max_step(x) + 2 * A / (n_xf + 1) + 1e-3
     assert max_step(y) <= bound, (max_step(y), bound)
+    # the recording names the eleven versions and their values, and its automation loads
+    versions = (tmp_path / "rec" / "versions.txt").read_text().splitlines()[1:]
+    assert len(versions) == 11 and all(str(f) in v for v in versions)
+    auto = livedyn.automation.Automation.load(tmp_path / "rec" / "automation.txt",
+                                              load(f).schema)
+    assert len([e for e in auto if e[0] > 0 and e[1] == "threshold"]) == 10
     # and the recording does show the ten versions: the level rises by about 1 dB per edit
     peaks = [float(np.max(np.abs(y[i:i + 4800]))) for i in range(0, len(y) - 4800, 4800)]
     assert 20 * np.log10(max(peaks) / min(peaks)) > 8.0
@@ -267,9 +273,11 @@ def kernel(x, key, out, p, s):
 
 
 def test_the_overrun_guard_bypasses_a_kernel_that_is_too_slow_live(tmp_path, jack_server):
+    from livedyn.wavio import read_wav as read
+
     f = tmp_path / "spin.py"
     write(f, GUARDED)
-    eng = start_engine(f)
+    eng = start_engine(f, record=tmp_path / "rec")
     try:
         time.sleep(0.7)
         assert eng.guard_tripped() is None
@@ -287,13 +295,40 @@ def test_the_overrun_guard_bypasses_a_kernel_that_is_too_slow_live(tmp_path, jac
         assert peak_out(eng) == pytest.approx(20 * np.log10(A), abs=0.3)
         assert int(eng.stats[cb.S_GUARD_TRIPS]) == 1
         assert any("overran the block budget" in t for _, t in eng.take_notices())
-        # after the fix, the algorithm runs again
+        # after the fix, a fresh instance is crossfaded in from the dry signal
         eng.set("spin", 0)
-        eng.reset_guard()
+        info = eng.reset_guard()
+        assert info is not None and eng.guard_tripped() is None
         time.sleep(0.3)
         assert peak_out(eng) == pytest.approx(out_before, abs=0.3)
     finally:
         eng.stop()
+    # neither the way into the bypass nor the way back made a step: the bound of the module
+    # docstring with the guard's shorter fade (5 ms, N = 240)
+    y, _ = read(tmp_path / "rec" / "out.wav")
+    x, _ = read(tmp_path / "rec" / "main.wav")
+    y, x = y[int(0.6 * FS):-int(0.1 * FS)], x[int(0.6 * FS):-int(0.1 * FS)]
+    bound = max_step(x) + 2 * A / (240 + 1) + 1e-3
+    assert max_step(y) <= bound, (max_step(y), bound)
+
+
+def test_the_key_monitor_plays_a_user_kernels_key(tmp_path, jack_server):
+    from livedyn.wavio import read_wav as read
+
+    f = tmp_path / "k.py"
+    write(f, GUARDED)
+    eng = start_engine(f, record=tmp_path / "rec")
+    try:
+        eng.monitor("key")
+        time.sleep(1.0)
+    finally:
+        eng.stop()
+    y, _ = read(tmp_path / "rec" / "out.wav")
+    x, _ = read(tmp_path / "rec" / "main.wav")
+    # the key is the main input here: after the fade-in the output is the input itself, and
+    # not a block of it repeated
+    a, b = int(0.6 * FS), int(0.9 * FS)
+    np.testing.assert_allclose(y[a:b], x[a:b], atol=1e-6)
 
 
 def test_a_user_kernel_writing_nan_is_caught_by_the_last_stage(tmp_path, jack_server):

@@ -71,7 +71,9 @@ def check_algorithm(alg, samplerate=FS):
 
     # 1. bounds-checked pass, 2. allocation
     _bounds_pass(alg, x, key, samplerate)
-    lines.append("bounds-checked pass: no out-of-bounds access")
+    lines.append("bounds-checked pass: no out-of-bounds access (parameters at their defaults, "
+                 "lowest and highest" + ("; mono and stereo, key 1 or 2 channels)"
+                                         if alg.kind == "user" else ")"))
     alloc = _allocates(alg)
     lines.append("allocation: " + (f"{', '.join(alloc)} allocate(s) on the heap per call "
                                    "(not real-time safe: declare STATE instead)" if alloc
@@ -236,30 +238,53 @@ def _bounds_pass(alg, x, key, fs):
         finally:
             for k, v in saved.items():
                 setattr(mod, k, v)
+        what = "parameters at their defaults"
         try:
-            if stage == "kernel":
-                s = np.zeros((proc.st.shape[1], ns))
-                out = np.zeros_like(x)
-                k = x
-                for i in range(0, len(x), 64):
-                    bc(x[i:i + 64], k[i:i + 64], out[i:i + 64], p, s)
-            elif stage == "gain_curve":
-                levels = np.concatenate([np.linspace(-200, 30, 921), [-np.inf, np.inf]])
-                _drive_curve(bc, levels, p)
-            else:
-                s = np.zeros(ns)
-                if stage == "detector":
-                    v = np.concatenate([x[::8, 0], key[::8, 0]]).astype(np.float64)
+            for label, pv in _param_sets(alg, p):
+                what = f"parameters at {label}"
+                if stage == "kernel":
+                    # mono and stereo, a mono key and a key as wide as the main input
+                    for ch, kw in ((1, 1), (2, 1), (2, 2)):
+                        xs = np.ascontiguousarray(x[:4800, :ch])
+                        ks = np.ascontiguousarray(key[:4800, :1] if kw == 1 and ch > 1
+                                                  else x[:4800, :kw])
+                        s = np.zeros((max(ch, kw, 12), ns))
+                        out = np.zeros_like(xs)
+                        what = f"{ch} channel(s), key width {kw}, parameters at {label}"
+                        for i in range(0, len(xs), 64):
+                            bc(xs[i:i + 64], ks[i:i + 64], out[i:i + 64], pv, s)
+                elif stage == "gain_curve":
+                    levels = np.concatenate([np.linspace(-200, 30, 461), [-np.inf, np.inf]])
+                    _drive_curve(bc, levels, pv)
                 else:
-                    v = np.concatenate([np.linspace(0, -60, 4800), np.full(2400, -60.0),
-                                        np.linspace(-60, 0, 4800), np.zeros(2400)])
-                _drive_stage(bc, v, p, s)
+                    s = np.zeros(ns)
+                    if stage == "detector":
+                        v = np.concatenate([x[::16, 0], key[::16, 0]]).astype(np.float64)
+                    else:
+                        v = np.concatenate([np.linspace(0, -60, 2400), np.full(1200, -60.0),
+                                            np.linspace(-60, 0, 2400), np.zeros(1200)])
+                    _drive_stage(bc, v, pv, s)
         except IndexError as e:
             raise UserAlgorithmError(f"{path}: refused: {stage} reads or writes out of bounds "
-                                     f"({e}; STATE declares {ns} slot(s) per channel)") from None
+                                     f"with {what} ({e}; STATE declares {ns} slot(s) per "
+                                     "channel)") from None
         except Exception as e:
             raise UserAlgorithmError(f"{path}: refused: {stage} raised {type(e).__name__}: {e}"
-                                     ) from None
+                                     f" with {what}") from None
+
+
+def _param_sets(alg, p):
+    """The parameter array at the defaults, then with every parameter at its lowest and at its
+    highest value (an index or a loop bound made from a parameter is checked at its ends)."""
+    yield "their defaults", p
+    for end in ("lowest", "highest"):
+        q = p.copy()
+        for prm in alg.schema:
+            if prm.taper == "choice":
+                q[prm.slot] = 0 if end == "lowest" else len(prm.choices) - 1
+            else:
+                q[prm.slot] = prm.lo if end == "lowest" else prm.hi
+        yield f"their {end}", q
 
 
 def _stage_sig(stage, ns):

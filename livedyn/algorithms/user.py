@@ -61,7 +61,7 @@ from pathlib import Path
 import numpy as np
 
 from ..params import (
-    ALL, KEY_EXTERNAL, LAW_COMPRESSOR, LAW_USER, NPARAM, P_SAMPLERATE, USER_SLOT0, Param, ParamError, Schema,
+    ALL, KEY_EXTERNAL, LAW_COMPRESSOR, LAW_USER, MAX_USER_LATENCY, NPARAM, P_SAMPLERATE, USER_SLOT0, Param, ParamError, Schema,
 )
 
 __all__ = ["UserAlgorithmError", "load", "user_param", "is_user_file", "STAGES", "MAX_STATE"]
@@ -132,6 +132,7 @@ def _build(path, source, digest):
         compile(source, str(path), "exec")
     except SyntaxError as e:
         raise UserAlgorithmError(f"{path}:{e.lineno}: syntax error: {e.msg}") from None
+    _no_raise(path, source)
     modname = f"livedyn_user_{re.sub(r'[^0-9A-Za-z_]', '_', path.stem)}_{digest}"
     spec = importlib.util.spec_from_file_location(modname, path)
     module = importlib.util.module_from_spec(spec)
@@ -139,7 +140,10 @@ def _build(path, source, digest):
     try:
         spec.loader.exec_module(module)
     except Exception as e:  # the user's code raised while being imported
-        raise UserAlgorithmError(f"{_where(path, e)}: {type(e).__name__}: {e}",
+        if type(e).__module__.startswith("numba"):  # e.g. a helper compiled at import
+            raise compile_error(path, "a numba function", e) from None
+        first = str(e).strip().splitlines()[0] if str(e).strip() else ""
+        raise UserAlgorithmError(f"{_where(path, e)}: {type(e).__name__}: {first}",
                                  traceback.format_exc()) from None
     sys.modules[modname] = module
 
@@ -165,8 +169,8 @@ def _build(path, source, digest):
     if names:
         module.S = enum.IntEnum("S", {n: i for i, n in enumerate(names)})
     boost = _flag(path, module, "BOOST")
-    block = _count(path, module, "BLOCK", 0, 1 << 16)
-    latency = _count(path, module, "LATENCY", 0, 1 << 20)
+    block = _count(path, module, "BLOCK", 0, MAX_USER_LATENCY)
+    latency = _count(path, module, "LATENCY", 0, MAX_USER_LATENCY)
     if (block or latency) and "kernel" not in fns:
         raise UserAlgorithmError(f"{path}: BLOCK and LATENCY belong to a whole kernel; the "
                                  "built-in stages have no latency of their own")
@@ -186,6 +190,22 @@ def _build(path, source, digest):
                      user_curve=compiled.get("gain_curve"),
                      user_detector=compiled.get("detector"),
                      user_smoother=compiled.get("smoother"), **common)
+
+
+def _no_raise(path, source):
+    """Refuse ``raise`` and ``assert`` inside the file's functions: when one fires in compiled
+    code on the audio thread, numba takes the interpreter lock to report it."""
+    import ast
+
+    for node in ast.walk(ast.parse(source, str(path))):
+        if isinstance(node, (ast.FunctionDef, ast.Lambda)):
+            for inner in ast.walk(node):
+                if isinstance(inner, (ast.Raise, ast.Assert)):
+                    what = "raise" if isinstance(inner, ast.Raise) else "assert"
+                    raise UserAlgorithmError(
+                        f"{path}:{inner.lineno}: refused: {what} in a function: in compiled "
+                        "code on the audio thread it would take the interpreter lock; return a "
+                        "safe value instead")
 
 
 def _schema(path, params, fns, defaults):
@@ -357,7 +377,7 @@ def _compile_kernel(path, fn, nstate):
     import numba as nb
     from numba import carray, types
 
-    from ..dsp.layout import NROWS, S_FRAMES
+    from ..dsp.layout import NROWS, S_FRAMES, T_KEY
     from ..engine.callback import JOB_SIG, JOB_SIZE, J_CALLS, _job_arrays
 
     jit = jit_of(fn)
@@ -367,6 +387,11 @@ def _compile_kernel(path, fn, nstate):
         s = st[NROWS:NROWS + nstate].reshape((ncols, nstate))
         jit(x, key, out, p, s)
         st[S_FRAMES, 0] += x.shape[0]
+        if tr.shape[1] >= x.shape[0]:  # the key as the kernel saw it, for monitoring
+            nk = min(key.shape[1], tr.shape[2])
+            for n in range(x.shape[0]):
+                for c in range(nk):
+                    tr[T_KEY, n, c] = key[n, c]
 
     f32 = types.Array(types.float32, 2, "C")
     sig = (f32, f32, f32, types.Array(types.float64, 1, "C"),

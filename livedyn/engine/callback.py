@@ -83,6 +83,7 @@ S_CANARY, S_NULL_IN, S_LAST_OVERRUN = 18, 19, 20
 S_KSLOT_USED = 21
 S_SWAPS, S_SWAP_BLOCKS, S_SWAP_EL_MAX, S_SWAP_FLAGGED, S_SWAP_LATE = 22, 23, 24, 25, 26
 S_GUARD_TRIPS, S_GUARD_EL = 27, 28  # times the overrun guard bypassed; the block time then
+S_SWAP_FRAME = 29  # first frame the last swapped-in version ran alone
 STATS_SIZE = 32
 
 # ---- safety state (float64) -----------------------------------------------------------------
@@ -375,20 +376,38 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
 
     # ---- live swap: run the incoming version beside the current one, then crossfade --------
     ud[U_SWAP_ACTIVE] = 0
+    dl = ud[U_DRY_LEN]
+    dry = carray(int_to_voidptr(ud[U_DRY]), (dl, ch), np.float32)
+    dpos = ud[U_DRY_POS]
+    lat = ud[U_LATENCY]
+    if lat >= dl:  # never read outside the dry line (the engine refuses such latencies)
+        lat = dl - 1
     req = load_acquire(ud, U_SWAP_REQ)
-    if req != ud[U_SWAP_DONE]:
+    swapping = req != ud[U_SWAP_DONE]
+    if swapping:
         ud[U_SWAP_ACTIVE] = 1
         nslot = ud[U_SWAP_SLOT]
         njaddr = table[nslot, 1]
         njob = carray(int_to_voidptr(njaddr), (JOB_SIZE,), np.int64)
         njob[J_FRAMES] = n
-        njob[J_TRN] = 0
+        njob[J_TRN] = n if monitor == MONITOR_KEY else 0  # (overwrites the old one's key trace)
         call_job(table[nslot, 0], int_to_voidptr(njaddr))
         y2 = carray(int_to_voidptr(ud[U_Y2]), (n, ch), np.float32)
         warm = ud[U_SWAP_WARM]
         pos = ud[U_SWAP_POS]
         xfl = ud[U_SWAP_XF]
+        from_dry = guard == GUARD_BYPASSED  # the guard had bypassed: fade from the dry signal
         for i in range(n):
+            if from_dry:  # the dry signal, delayed by the latency (this block is not yet in it)
+                if i >= lat:
+                    for c in range(ch):
+                        y[i, c] = x[i - lat, c]
+                else:
+                    r = dpos + i - lat
+                    if r < 0:
+                        r += dl
+                    for c in range(ch):
+                        y[i, c] = dry[r, c]
             if warm > 0:  # the incoming delay line fills with live input; its output unused
                 warm -= 1
             elif pos < xfl:
@@ -406,17 +425,16 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
             ud[U_LATENCY] = ud[U_SWAP_LAT]
             ud[U_GUARD_STATE] = GUARD_OK
             ud[U_GUARD_COUNT] = 0
+            guard = GUARD_OK
             store_release(ud, U_KSLOT, nslot)
             stats[S_SWAPS] += 1
+            stats[S_SWAP_FRAME] = frame0 + n
             ud[U_SWAP_TAIL] = 2
             store_release(ud, U_SWAP_DONE, req)
             job = njob
 
     # ---- dry delay line (for bypass, delta and the guard, aligned with the latency) ---------
-    dl = ud[U_DRY_LEN]
-    dry = carray(int_to_voidptr(ud[U_DRY]), (dl, ch), np.float32)
-    pos = ud[U_DRY_POS]
-    lat = ud[U_LATENCY]
+    pos = dpos
     bypass = load_relaxed(ud, U_BYPASS)
     gpos = ud[U_GUARD_POS]
     gxf = ud[U_GUARD_XF]
@@ -426,7 +444,7 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
         r = pos - lat
         if r < 0:
             r += dl
-        if bypass != 0 or guard == GUARD_BYPASSED:
+        if bypass != 0 or (guard == GUARD_BYPASSED and not swapping):
             for c in range(ch):
                 y[i, c] = dry[r, c]
         elif guard == GUARD_FADING:

@@ -17,7 +17,7 @@ import numpy as np
 
 from ..dsp.layout import NTRACE
 from ..meters import MeterSet
-from ..params import NPARAM, ParamError
+from ..params import MAX_USER_LATENCY, NPARAM, ParamError
 from ..processor import Processor
 from . import callback as cb
 from .stream import DeviceError, NativeStream, find_device
@@ -221,7 +221,8 @@ class Engine:
         self.safe[cb.F_MUTE_STEP] = 1.0 / max(1.0, mute_ms * self.fs / 1000.0)
         self.safe[cb.F_CEIL] = 10 ** (ceiling_db / 20.0)
         self._fade_out_step = 1.0 / max(1.0, fade_out_ms * self.fs / 1000.0)
-        dry_len = processor.ring.shape[0] + maxf
+        # the dry line delays by any latency a processor (or a later version) may have
+        dry_len = max(processor.ring.shape[0], MAX_USER_LATENCY + 1) + maxf
         self.dry = np.zeros((dry_len, self.ch), np.float32)
         self.meter = np.zeros(cb.METER_SIZE, np.float64)
         self.elring = np.zeros((ELRING, 3), np.int64)
@@ -306,6 +307,9 @@ class Engine:
         self._recent_lock = threading.Lock()
         self._changes = []  # (seq, name, value) for the automation recording
         self._schemas = [processor.schema]  # of every version run (for the automation file)
+        self._swaps_recorded = []  # (frame, Algorithm) of every swap, for the automation file
+        a0 = processor.algorithm
+        self._first_alg_label = f"{a0.source or a0.name} {a0.digest}".rstrip()
         self._notices = []  # (level, text) for the console and the status lines
         self._guard_told = False
         self._recorded = []  # (frame, name, value)
@@ -582,7 +586,8 @@ class Engine:
         return pr
 
     # ---- live swap ----------------------------------------------------------------------------
-    def swap(self, algorithm, timeout=3.0, xfade_ms=SWAP_XFADE_MS, prime_seconds=PRIME_SECONDS):
+    def swap(self, algorithm, xfade_ms=SWAP_XFADE_MS, prime_seconds=PRIME_SECONDS,
+             stall_seconds=0.5):
         """Replace the running algorithm with ``algorithm`` (an Algorithm, e.g. a new version
         of a user file) without a dropout.
 
@@ -592,7 +597,8 @@ class Engine:
         versions: first until the new one's delay line holds live input, then a crossfade of
         ``xfade_ms``, after which the new one is current and the callback echoes the switch. The
         old version's code and state stay alive until that echo. Returns a dict of what
-        happened; raises EngineError when the callback does not confirm within ``timeout``."""
+        happened; raises EngineError when the stream stops (no block for ``stall_seconds``)
+        before the callback confirms the switch."""
         from .. import algorithms
 
         alg = algorithms.get(algorithm)
@@ -634,22 +640,32 @@ class Engine:
             blocks0 = int(self.stats[cb.S_SWAP_BLOCKS])
             req = int(self.ud[cb.U_SWAP_REQ]) + 1
             cb.publish_swap(self.ud, req)
-            t_end = time.monotonic() + timeout
+            # Once asked, the callback finishes the swap whatever happens here, so this waits for
+            # its echo for as long as the stream runs: giving up earlier would leave the engine
+            # and the callback running different versions.
+            frames, t_frames = int(self.stats[cb.S_FRAMES]), time.monotonic()
             while int(self.ud[cb.U_SWAP_DONE]) != req:
-                if time.monotonic() > t_end or not self.alive():
-                    self._retired = (old, new)  # the callback may still use either: keep both
-                    raise EngineError(f"swap: the callback did not confirm the switch within "
-                                      f"{timeout:g} s")
+                now = time.monotonic()
+                f = int(self.stats[cb.S_FRAMES])
+                if f != frames:
+                    frames, t_frames = f, now
+                elif now - t_frames > stall_seconds or not self.alive():
+                    self._retired = (old, new)  # no callback runs: keep both, change nothing
+                    raise EngineError(f"swap: the stream stopped (no block for "
+                                      f"{now - t_frames:.1f} s) before the switch")
                 time.sleep(0.001)
             # the callback now runs the new version only: the old one may go after this
+            self.pend[:] = new.p
             self._retired = old
             self._slot_owner[cur] = None
-            self.proc = new
-            self.pend[:] = new.p
-            self.ptmp[:] = new.p
             self.ud[cb.U_GUARD_ON] = 1 if alg.source is not None else 0
             self._schemas.append(new.schema)
-            info = {"algorithm": alg.name, "frame": int(self.stats[cb.S_FRAMES]),
+            frame = int(self.stats[cb.S_SWAP_FRAME])
+            self._swaps_recorded.append((frame, alg))
+            for prm in new.schema:  # the values in force from the switch on
+                self._recorded.append((frame, prm.name, float(new.p[prm.slot])))
+            self.proc = new  # last: readers of proc find pend already the new version's
+            info = {"algorithm": alg.name, "frame": frame,
                     "prime_s": t_prime, "switch_s": time.monotonic() - t0 - t_prime,
                     "carried": carried, "latency": lat,
                     "swap_blocks": int(self.stats[cb.S_SWAP_BLOCKS]) - blocks0}
@@ -684,9 +700,11 @@ class Engine:
                 "version or call reset_guard()")
 
     def reset_guard(self):
-        """Run the algorithm again after the overrun guard bypassed it."""
-        self.ud[cb.U_GUARD_COUNT] = 0
-        self.ud[cb.U_GUARD_STATE] = cb.GUARD_OK
+        """Run the algorithm again after the overrun guard bypassed it: a fresh instance,
+        primed on the recent input, crossfaded in from the dry signal (as a swap)."""
+        if int(self.ud[cb.U_GUARD_STATE]) == cb.GUARD_OK:
+            return None
+        return self.swap(self.proc.algorithm)
 
     def bypass(self, on=True):
         self.ud[cb.U_BYPASS] = 1 if on else 0
@@ -776,13 +794,21 @@ class Engine:
     def _write_automation(self):
         from ..automation import Automation
 
-        from ..params import Schema
-
-        union = {prm.name: prm for sch in self._schemas for prm in sch}
-        auto = Automation(self.fs, schema=Schema(union))
+        # after a swap, versions may give one name different ranges or names: the file then
+        # holds plain numbers (each was checked by the version that ran when it was set)
+        auto = Automation(self.fs, schema=None if self._swaps_recorded else self.proc.schema)
         for frame, name, v in sorted(self._recorded, key=lambda e: e[0]):
             auto.add(frame, name, v)
         auto.save(self.record_dir / "automation.txt")
+        if self._swaps_recorded:  # which version ran from which frame
+            lines = [f"0 {self._first_alg_label}"]
+            lines += [f"{f} {a.source or a.name} {a.digest}".rstrip()
+                      for f, a in self._swaps_recorded]
+            from ..presets import write_text_atomic
+
+            write_text_atomic(self.record_dir / "versions.txt",
+                              "# FRAME ALGORITHM (file or name) CONTENT HASH\n"
+                              + "\n".join(lines) + "\n")
 
 
 def realtime_threads():
