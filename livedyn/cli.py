@@ -479,12 +479,10 @@ def _cmd_run(args):
 def _has_key(setup):
     """Whether the algorithm a Setup names takes a key input (a preset's or the default)."""
     from . import algorithms, presets
+    from .render import algorithm_of
 
-    name = setup.algorithm
-    if name is None and setup.preset is not None:
-        pr = presets.load(setup.preset)
-        name = str(pr.algorithm_file) if pr.algorithm_file is not None else pr.algorithm
-    return "key" in algorithms.get(name or "compressor").schema
+    preset = presets.load(setup.preset) if setup.preset else None
+    return "key" in algorithms.get(algorithm_of(setup, preset)).schema
 
 
 def _print_report(alg):

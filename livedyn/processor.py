@@ -194,11 +194,14 @@ class Processor:
             k = np.ascontiguousarray(k, dtype=np.float32)
         return x, k, squeeze
 
+    def _new_out(self, x):
+        # a user kernel that leaves samples unwritten shows NaN there (caught by the checks)
+        return np.full_like(x, np.nan) if self.algorithm.kind == "user" else np.empty_like(x)
+
     def process(self, x, key=None):
         """Process a block: float32 (frames, channels) in, same shape out."""
         x, k, squeeze = self._prepare(x, key)
-        # a user kernel that leaves samples unwritten shows NaN there (caught by the checks)
-        out = np.full_like(x, np.nan) if self.algorithm.kind == "user" else np.empty_like(x)
+        out = self._new_out(x)
         self._kernel(x, k, out, self.p, self.st, self.ring, self._no_trace)
         return out[:, 0] if squeeze else out
 
@@ -210,7 +213,7 @@ class Processor:
         (dB), the gain computer output (dB), the smoothed gain (dB) and the total gain (dB).
         """
         x, k, squeeze = self._prepare(x, key)
-        out = np.full_like(x, np.nan) if self.algorithm.kind == "user" else np.empty_like(x)
+        out = self._new_out(x)
         tr = np.zeros((L.NTRACE, x.shape[0], self.st.shape[1]), dtype=np.float64)
         self._kernel(x, k, out, self.p, self.st, self.ring, tr)
         ngain = self.channels if int(self.p[P_LINK]) == LINK_NONE else 1

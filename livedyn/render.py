@@ -51,16 +51,9 @@ def parse_setting(text):
     return name.strip(), value.strip()
 
 
-def build_processor(setup: Setup, samplerate, channels, key_channels=0,
-                    strict_key=False) -> Processor:
-    """A Processor from an algorithm name and/or a preset, then --set values.
-
-    Without key channels a key = external (the algorithm's default or the preset's) falls back
-    to the main input; with ``strict_key`` that raises RenderError instead (a render without
-    the key file its setting asks for). Key channels for an algorithm without a key input
-    raise RenderError.
-    """
-    preset = presets_mod.load(setup.preset) if setup.preset else None
+def algorithm_of(setup: Setup, preset=None) -> str:
+    """The algorithm (a built-in name or a file's path) that a Setup and its loaded preset
+    name; RenderError when --algorithm and the preset disagree."""
     algo = setup.algorithm
     if preset is not None:
         if preset.algorithm_file is not None:
@@ -76,8 +69,21 @@ def build_processor(setup: Setup, samplerate, channels, key_channels=0,
                     f"--algorithm {algo} conflicts with preset {setup.preset} "
                     f"(algorithm {preset.algorithm}); give one or make them agree")
             algo = preset.algorithm
-    algo = algo or "compressor"
-    proc = Processor(algo, samplerate, channels, key_channels=key_channels)
+    return algo or "compressor"
+
+
+def build_processor(setup: Setup, samplerate, channels, key_channels=0,
+                    strict_key=False) -> Processor:
+    """A Processor from an algorithm name and/or a preset, then --set values.
+
+    Without key channels a key = external (the algorithm's default or the preset's) falls back
+    to the main input; with ``strict_key`` that raises RenderError instead (a render without
+    the key file its setting asks for). Key channels for an algorithm without a key input
+    raise RenderError.
+    """
+    preset = presets_mod.load(setup.preset) if setup.preset else None
+    proc = Processor(algorithm_of(setup, preset), samplerate, channels,
+                     key_channels=key_channels)
     if key_channels and "key" not in proc.schema:
         raise RenderError(f"--key: the {proc.algorithm.name} has no key input; leave out "
                           "--key or choose an algorithm with one")

@@ -31,6 +31,7 @@ class Algorithm:
     stages: tuple = ()  # which stages the file provides
     report: tuple = ()  # the load-time check report, one line each
     digest: str = ""  # hash of the file's text
+    module: object = None  # the file's module (its stages and numba helpers)
 
     def kernel(self):
         if self.kind == "user":

@@ -204,16 +204,10 @@ def _boost(alg, proc, x, y, gain_db, fs):
 
 def _bounds_pass(alg, x, key, fs):
     """Run each stage compiled with bounds checking on; an IndexError refuses the file."""
-    import importlib
+    from ..processor import Processor
 
     path = alg.source
-    mod = None
-    for name, m in list(__import__("sys").modules.items()):
-        if name.startswith("livedyn_user_") and name.endswith(alg.digest):
-            mod = m
-    if mod is None:
-        mod = importlib.import_module  # pragma: no cover (the module is registered by load)
-    from ..processor import Processor
+    mod = alg.module
 
     from numba.core.registry import CPUDispatcher
 

@@ -91,10 +91,16 @@ def is_user_file(spec) -> bool:
     return str(spec).endswith(".py")
 
 
-def _where(path, exc):
+def _user_line(path, exc):
+    """The line of ``path`` deepest in the traceback of ``exc``, or None."""
     tb = traceback.extract_tb(exc.__traceback__)
     lines = [f for f in tb if Path(f.filename).resolve() == path]
-    return f"{path}:{lines[-1].lineno}" if lines else str(path)
+    return lines[-1].lineno if lines else None
+
+
+def _where(path, exc):
+    line = _user_line(path, exc)
+    return f"{path}:{line}" if line else str(path)
 
 
 def load(path, check=True):
@@ -179,7 +185,7 @@ def _build(path, source, digest):
     desc = (module.__doc__ or "").strip().splitlines()[0] if module.__doc__ else ""
     needs_key = "key" in schema and int(schema["key"].default) == KEY_EXTERNAL
     common = dict(source=path, state_size=nstate, boost=boost, block=block, latency=latency,
-                  stages=tuple(fns), digest=digest, needs_key=needs_key)
+                  stages=tuple(fns), digest=digest, needs_key=needs_key, module=module)
     if "kernel" in fns:
         blk, job = _compile_kernel(path, fns["kernel"], nstate)
         return Algorithm(name, desc or f"user kernel {path.name}", schema, "user", 0,
@@ -317,10 +323,7 @@ def compile_error(path, what, exc):
         except OSError:
             pass
     if not line:
-        tb = traceback.extract_tb(exc.__traceback__)
-        mine = [f for f in tb if Path(f.filename).resolve() == path]
-        if mine:
-            line = str(mine[-1].lineno)
+        line = str(_user_line(path, exc) or "")
     reason = ""
     lines = [ln.strip() for ln in text.splitlines()]
     for i, s in enumerate(lines):

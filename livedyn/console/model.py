@@ -140,21 +140,17 @@ class _CurveView:
     def __init__(self, algorithm, values, p=None, schema=None):
         self.algorithm = algorithm
         self._values = values
-        self._p, self._schema = p, schema
+        self.p = None  # the parameter array with these values (a user gain curve reads it)
+        if p is not None:
+            import numpy as np
+
+            self.p = np.array(p, dtype=np.float64)
+            for name, v in values.items():
+                if name in schema:
+                    self.p[schema[name].slot] = v
 
     def values(self):
         return dict(self._values)
-
-    @property
-    def p(self):
-        """The parameter array with these values (a user gain curve reads it)."""
-        import numpy as np
-
-        p = np.array(self._p, dtype=np.float64)
-        for name, v in self._values.items():
-            if name in self._schema:
-                p[self._schema[name].slot] = v
-        return p
 
 
 class ConsoleModel:

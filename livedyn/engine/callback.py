@@ -310,11 +310,13 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
     # ---- timing: a block is late if it started more than 1.5 periods after the previous one
     # and the previous one did not overrun (an overrun is counted by the block itself) ---------
     interval = 0
+    started_late = False
     if blocks == 0:
         stats[S_T_FIRST] = t0
     else:
         interval = t0 - stats[S_T_LAST]
-        if period > 0 and 2 * interval > 3 * period and stats[S_LAST_OVERRUN] == 0:
+        started_late = period > 0 and 2 * interval > 3 * period and stats[S_LAST_OVERRUN] == 0
+        if started_late:
             stats[S_LATE] += 1
     stats[S_T_LAST] = t0
     if status != 0:
@@ -534,7 +536,7 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
 
     stats[S_BLOCKS] = blocks + 1
     store_release(stats, S_FRAMES, frame0 + n)
-    return interval
+    return interval, started_late
 
 
 # int cb(const void* input, void* output, unsigned long frameCount,
@@ -562,16 +564,15 @@ def native_callback(inp_ptr, out_ptr, frames, time_info, status, user):
     nin = ud[U_NIN]
     ip = inp_ptr if has_in else int_to_voidptr(ud[U_X])
     inp = carray(ip, (n, nin if nin > 0 else 1), np.float32)
-    interval = block_body(inp, has_in, out_ptr, n, ud, stats, t0, np.int64(status))
+    interval, started_late = block_body(inp, has_in, out_ptr, n, ud, stats, t0,
+                                        np.int64(status))
     el = monotonic_ns() - t0
     stats[S_EL_LAST] = el
     if el > stats[S_EL_MAX]:
         stats[S_EL_MAX] = el
     period = stats[S_PERIOD_NS]
     over = 1 if (period > 0 and el > period) else 0
-    # a block that started late was counted by block_body already: count each block once
-    started_late = period > 0 and 2 * interval > 3 * period and stats[S_LAST_OVERRUN] == 0
-    if over and not started_late:
+    if over and not started_late:  # a block that started late was counted already: count once
         stats[S_LATE] += 1
     stats[S_LAST_OVERRUN] = over
     # ---- the blocks of a live swap (and the two after it, whose flags describe it) -----------

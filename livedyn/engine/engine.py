@@ -308,8 +308,7 @@ class Engine:
         self._changes = []  # (seq, name, value) for the automation recording
         self._schemas = [processor.schema]  # of every version run (for the automation file)
         self._swaps_recorded = []  # (frame, Algorithm) of every swap, for the automation file
-        a0 = processor.algorithm
-        self._first_alg_label = f"{a0.source or a0.name} {a0.digest}".rstrip()
+        self._first_alg = processor.algorithm
         self._notices = []  # (level, text) for the console and the status lines
         self._guard_told = False
         self._recorded = []  # (frame, name, value)
@@ -801,9 +800,8 @@ class Engine:
             auto.add(frame, name, v)
         auto.save(self.record_dir / "automation.txt")
         if self._swaps_recorded:  # which version ran from which frame
-            lines = [f"0 {self._first_alg_label}"]
-            lines += [f"{f} {a.source or a.name} {a.digest}".rstrip()
-                      for f, a in self._swaps_recorded]
+            lines = [f"{f} {a.source or a.name} {a.digest}".rstrip()
+                     for f, a in [(0, self._first_alg)] + self._swaps_recorded]
             from ..presets import write_text_atomic
 
             write_text_atomic(self.record_dir / "versions.txt",
