@@ -167,6 +167,113 @@ def find_max(limit_share=0.7, seconds=5.0, out=print, **kw):
     return best, rows
 
 
+# ---- live swap ------------------------------------------------------------------------------
+
+def run_swap(swaps=10, algorithm="compressor", samplerate=48000, blocksize=64, channels=2,
+             interval=0.3, headless=True, device=None, realtime=True, out=print):
+    """``swaps`` live swaps of an algorithm to a fresh instance of itself while it streams.
+
+    A swap's blocks run both versions (and the crossfade), so they cost about twice a normal
+    block; this reports the callback's own time in those blocks beside the others', as shares
+    of the period and as their ratio, with late and flagged blocks in and out of the swap
+    windows and the control side's prime and switch times. One run, one machine: a ratio is
+    the figure to quote, with the load average."""
+    from livedyn import algorithms
+    from livedyn.engine import callback as cb
+    from livedyn.engine import stream as st
+    from livedyn.engine.engine import ArraySource, Engine
+    from livedyn.engine.jackserver import JackServer
+
+    if int(swaps) < 1:
+        raise ValueError(f"swaps {swaps!r}: expected a whole number of at least 1")
+    alg = algorithms.get(algorithm)
+    load0 = os.getloadavg()
+    server = None
+    if headless:
+        server = JackServer(samplerate, blocksize, realtime=realtime).start()
+        st.reinitialise()
+        device = "system"
+    try:
+        kch = 1 if alg.needs_key else 0
+        proc = _processor(alg, samplerate, channels, kch,
+                          DEFAULT_SETTINGS.get(algorithm, {}) if isinstance(algorithm, str)
+                          else {})
+        rng = np.random.default_rng(1)
+        n = int(samplerate * 4)
+        sig = (0.3 * rng.standard_normal((n, channels)) *
+               np.repeat(rng.uniform(0.05, 1.0, n // 4800 + 1), 4800)[:n, None])
+        key = ArraySource(sig[:, :1], loop=True) if kch else None
+        eng = Engine(proc, blocksize, device=device, main_source=ArraySource(sig, loop=True),
+                     key_source=key, meters=False)
+        infos = []
+        eng.start()
+        try:
+            time.sleep(max(interval, 0.6))  # past the fade-in and the first blocks
+            for _ in range(int(swaps)):
+                infos.append(eng.swap(alg))
+                time.sleep(interval)
+            snap = eng.snapshot()
+            stats = eng.stats.copy()
+        finally:
+            eng.stop()
+        nb = min(int(stats[cb.S_BLOCKS]), len(eng.elring))
+        ring = eng.elring[:nb].copy()
+        period = float(stats[cb.S_PERIOD_NS])
+    finally:
+        st.terminate()
+        if server is not None:
+            server.stop()
+    skip = min(nb, int(0.5 * samplerate / blocksize))  # start-up blocks are not the steady state
+    ring = ring[skip:]
+    in_swap = ((ring[:, 2] >> cb.SWAP_BIT) & 1).astype(bool)
+    flagged = (ring[:, 2] & ((1 << cb.SWAP_BIT) - 1)) != 0
+
+    def shares(el):
+        el = np.asarray(el, np.float64) / period
+        if not len(el):
+            return {"median": None, "p99": None, "max": None}
+        return {"median": float(np.median(el)), "p99": float(np.percentile(el, 99)),
+                "max": float(el.max())}
+
+    sw, other = shares(ring[in_swap, 0]), shares(ring[~in_swap, 0])
+    res = {
+        "algorithm": alg.name, "samplerate": samplerate, "blocksize": blocksize,
+        "channels": channels, "swaps": int(stats[cb.S_SWAPS]),
+        "swap_blocks": int(np.count_nonzero(in_swap)), "other_blocks": int(np.count_nonzero(~in_swap)),
+        "swap_callback": sw, "other_callback": other,
+        "median_ratio": (sw["median"] / other["median"]) if sw["median"] and other["median"]
+        else None,
+        "flagged_in_swaps": int(np.count_nonzero(flagged & in_swap)),
+        "flagged_elsewhere": int(np.count_nonzero(flagged & ~in_swap)),
+        "late_in_swaps": int(stats[cb.S_SWAP_LATE]),
+        "late_blocks": snap["late_blocks"], "flagged_blocks": snap["flagged_blocks"],
+        "prime_ms": float(np.median([i["prime_s"] for i in infos]) * 1e3),
+        "switch_ms": float(np.median([i["switch_s"] for i in infos]) * 1e3),
+        "switch_ms_max": float(max(i["switch_s"] for i in infos) * 1e3),
+        "realtime_granted": bool(server.realtime_granted) if server else None,
+        "load_average_before": load0, "load_average_after": os.getloadavg(),
+    }
+    if out:
+        out(format_swap(res))
+    return res
+
+
+def format_swap(r):
+    s, o = r["swap_callback"], r["other_callback"]
+    pct = (lambda v: "n/a" if v is None else f"{100 * v:.2f} %")
+    ratio = "n/a" if r["median_ratio"] is None else f"{r['median_ratio']:.2f}"
+    return (f"{r['algorithm']} {r['channels']} ch {r['samplerate']} Hz block {r['blocksize']}: "
+            f"{r['swaps']} swaps, {r['swap_blocks']} swap blocks, {r['other_blocks']} others; "
+            f"callback median {pct(s['median'])} in swap blocks vs {pct(o['median'])} "
+            f"(ratio {ratio}), 99th {pct(s['p99'])} vs {pct(o['p99'])}, max {pct(s['max'])} "
+            f"vs {pct(o['max'])} of the period; flagged {r['flagged_in_swaps']} in swap "
+            f"windows, {r['flagged_elsewhere']} elsewhere; late {r['late_in_swaps']} in swaps, "
+            f"{r['late_blocks']} in all; prime {r['prime_ms']:.1f} ms, "
+            f"switch {r['switch_ms']:.1f} ms median (max {r['switch_ms_max']:.1f}); real time "
+            f"{'granted' if r['realtime_granted'] else 'not granted'}; load average "
+            f"{r['load_average_before'][0]:.2f} -> {r['load_average_after'][0]:.2f}")
+
+
 # ---- latency --------------------------------------------------------------------------------
 
 def find_delay(sent, received, max_delay):

@@ -562,6 +562,14 @@ def cmd_bench(args):
                 [None if args.load == "none" else args.load]
             result["stream"] = [live.run_stream(instances=args.instances, load=ld, **kw)
                                 for ld in loads]
+    if what in ("swap", "all"):
+        swaps = args.swaps if args.swaps is not None else (5 if args.quick else 20)
+        if swaps < 1:
+            raise CliError(f"--swaps {swaps}: expected a whole number of at least 1")
+        result["swap"] = live.run_swap(swaps=swaps, algorithm=args.algorithm,
+                                       samplerate=int(args.samplerate), blocksize=args.blocksize,
+                                       headless=not args.device, device=args.device,
+                                       realtime=not args.no_realtime)
     if what in ("latency", "all"):
         result["latency"] = live.run_latency(repeats=args.repeats, samplerate=int(args.samplerate),
                                              blocksize=args.blocksize, headless=not args.device,
@@ -697,7 +705,7 @@ def build_parser():
     bn = sub.add_parser("bench", help="what an algorithm costs, stream headroom, latency",
                         description="Measure kernel cost, live-stream headroom and round-trip "
                                     "latency (headless JACK server unless --device is given).")
-    bn.add_argument("what", choices=["kernels", "stream", "latency", "all"])
+    bn.add_argument("what", choices=["kernels", "stream", "swap", "latency", "all"])
     bn.add_argument("--quick", action="store_true", help="short runs for a smoke test")
     bn.add_argument("--algorithm", default="compressor",
                     help="built-in name or FILE.py: kernels then times the file beside the "
@@ -709,6 +717,9 @@ def build_parser():
                     help="interpreter load in the same process during the stream run")
     bn.add_argument("--seconds", type=float, help="stream run length (default 60, quick 5)")
     bn.add_argument("--repeats", type=int, default=5, help="latency measurements")
+    bn.add_argument("--swaps", type=int, metavar="N",
+                    help="live swaps to time, the algorithm to a fresh instance of itself "
+                         "(default 20, quick 5)")
     bn.add_argument("--samplerate", type=float, default=48000.0)
     bn.add_argument("--blocksize", type=int, default=64)
     bn.add_argument("--device", help="measure on this device instead of a headless server")
