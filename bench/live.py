@@ -79,6 +79,33 @@ def _processor(algorithm, fs, channels, key_channels, settings):
     return p
 
 
+def _start_server(headless, samplerate, blocksize, realtime, device):
+    """(server, device): a headless JACK server of the run's own and its device name, or no
+    server and the device given."""
+    if not headless:
+        return None, device
+    from livedyn.engine import stream as st
+    from livedyn.engine.jackserver import JackServer
+
+    server = JackServer(samplerate, blocksize, realtime=realtime).start()
+    st.reinitialise()
+    return server, "system"
+
+
+def _engine(proc, samplerate, channels, key_channels, blocksize, device, instances=1):
+    """An Engine playing 4 s of seeded noise in 0.1 s steps of level, looped (its first channel
+    also as the key when the processor takes one)."""
+    from livedyn.engine.engine import ArraySource, Engine
+
+    rng = np.random.default_rng(1)
+    n = int(samplerate * 4)
+    sig = (0.3 * rng.standard_normal((n, channels)) *
+           np.repeat(rng.uniform(0.05, 1.0, n // 4800 + 1), 4800)[:n, None])
+    key = ArraySource(sig[:, :1], loop=True) if key_channels else None
+    return Engine(proc, blocksize, device=device, main_source=ArraySource(sig, loop=True),
+                  key_source=key, instances=instances, meters=False)
+
+
 DEFAULT_SETTINGS = {"compressor": {"key_hpf": 100.0, "lookahead": 5.0}}
 
 
@@ -87,25 +114,15 @@ def run_stream(seconds=10.0, algorithm="compressor", instances=1, samplerate=480
                settings=None, out=print):
     """One measured run; returns a dict of figures (shares of the block period)."""
     from livedyn.engine import stream as st
-    from livedyn.engine.engine import ArraySource, Engine
-    from livedyn.engine.jackserver import JackServer
 
     settings = DEFAULT_SETTINGS.get(algorithm, {}) if settings is None else settings
-    server = None
-    if headless:
-        server = JackServer(samplerate, blocksize, realtime=realtime).start()
-        st.reinitialise()
-        device = "system"
+    server, device = _start_server(headless, samplerate, blocksize, realtime, device)
     try:
-        kch = 1 if algorithm == "ducker" else 0
+        from livedyn import algorithms
+
+        kch = 1 if algorithms.get(algorithm).needs_key else 0
         proc = _processor(algorithm, samplerate, channels, kch, settings)
-        rng = np.random.default_rng(1)
-        n = int(samplerate * 4)
-        sig = (0.3 * rng.standard_normal((n, channels)) *
-               np.repeat(rng.uniform(0.05, 1.0, n // 4800 + 1), 4800)[:n, None])
-        key = ArraySource(sig[:, :1], loop=True) if kch else None
-        eng = Engine(proc, blocksize, device=device, main_source=ArraySource(sig, loop=True),
-                     key_source=key, instances=instances, meters=False)
+        eng = _engine(proc, samplerate, channels, kch, blocksize, device, instances=instances)
         rss0 = _rss_kib()
         with _Load(load) as ld:
             eng.start()
@@ -181,30 +198,18 @@ def run_swap(swaps=10, algorithm="compressor", samplerate=48000, blocksize=64, c
     from livedyn import algorithms
     from livedyn.engine import callback as cb
     from livedyn.engine import stream as st
-    from livedyn.engine.engine import ArraySource, Engine
-    from livedyn.engine.jackserver import JackServer
 
     if int(swaps) < 1:
         raise ValueError(f"swaps {swaps!r}: expected a whole number of at least 1")
     alg = algorithms.get(algorithm)
     load0 = os.getloadavg()
-    server = None
-    if headless:
-        server = JackServer(samplerate, blocksize, realtime=realtime).start()
-        st.reinitialise()
-        device = "system"
+    server, device = _start_server(headless, samplerate, blocksize, realtime, device)
     try:
         kch = 1 if alg.needs_key else 0
         proc = _processor(alg, samplerate, channels, kch,
                           DEFAULT_SETTINGS.get(algorithm, {}) if isinstance(algorithm, str)
                           else {})
-        rng = np.random.default_rng(1)
-        n = int(samplerate * 4)
-        sig = (0.3 * rng.standard_normal((n, channels)) *
-               np.repeat(rng.uniform(0.05, 1.0, n // 4800 + 1), 4800)[:n, None])
-        key = ArraySource(sig[:, :1], loop=True) if kch else None
-        eng = Engine(proc, blocksize, device=device, main_source=ArraySource(sig, loop=True),
-                     key_source=key, meters=False)
+        eng = _engine(proc, samplerate, channels, kch, blocksize, device)
         infos = []
         eng.start()
         try:
