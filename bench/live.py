@@ -244,7 +244,8 @@ def run_swap(swaps=10, algorithm="compressor", samplerate=48000, blocksize=64, c
     res = {
         "algorithm": alg.name, "samplerate": samplerate, "blocksize": blocksize,
         "channels": channels, "swaps": int(stats[cb.S_SWAPS]),
-        "swap_blocks": int(np.count_nonzero(in_swap)), "other_blocks": int(np.count_nonzero(~in_swap)),
+        "swap_blocks": int(np.count_nonzero(in_swap)),
+        "other_blocks": int(np.count_nonzero(~in_swap)),
         "swap_callback": sw, "other_callback": other,
         "median_ratio": (sw["median"] / other["median"]) if sw["median"] and other["median"]
         else None,

@@ -702,9 +702,10 @@ def build_parser():
                     help="ask for real-time scheduling where the system allows it")
     rn.set_defaults(func=cmd_run)
 
-    bn = sub.add_parser("bench", help="what an algorithm costs, stream headroom, latency",
-                        description="Measure kernel cost, live-stream headroom and round-trip "
-                                    "latency (headless JACK server unless --device is given).")
+    bn = sub.add_parser("bench", help="what an algorithm costs, stream headroom, swaps, latency",
+                        description="Measure kernel cost, live-stream headroom, the cost of a "
+                                    "live swap and round-trip latency (headless JACK server "
+                                    "unless --device is given).")
     bn.add_argument("what", choices=["kernels", "stream", "swap", "latency", "all"])
     bn.add_argument("--quick", action="store_true", help="short runs for a smoke test")
     bn.add_argument("--algorithm", default="compressor",
