@@ -360,9 +360,6 @@ def _cmd_run(args):
                        "--input-device and --output-device, or leave out --headless")
     if args.loopback and not args.headless:
         raise CliError("--loopback needs --headless (on hardware, connect a cable)")
-    if args.watch and not (args.algorithm and str(args.algorithm).endswith(".py")) and \
-            not args.preset:
-        raise CliError("--watch reloads an algorithm file: give --algorithm FILE.py")
     fs = args.samplerate
     main_in = _channel_list(args.main_inputs, "--main-inputs")
     key_in = _channel_list(args.key_inputs, "--key-inputs")
@@ -535,7 +532,9 @@ def cmd_bench(args):
 
     what = args.what
     result = {}
-    user_file = str(args.algorithm).endswith(".py")
+    from .algorithms.user import is_user_file
+
+    user_file = is_user_file(args.algorithm)
     if user_file and what in ("kernels", "all"):
         from bench.user import format_user, run_user
 

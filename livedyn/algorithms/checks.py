@@ -215,23 +215,23 @@ def _bounds_pass(alg, x, key, fs):
     p = proc.p.copy()
     ns = max(alg.state_size, 0)
     # the file's own numba helpers are bounds-checked too: while the stages compile, the
-    # module's names point at bounds-checked copies of them
+    # module's names point at bounds-checked copies of them (made once, shared by the stages)
     saved = {k: v for k, v in vars(mod).items() if isinstance(v, CPUDispatcher)}
-    for stage in alg.stages:
-        fn = getattr(mod, stage)
-        try:
-            for k, v in saved.items():
-                if k not in STAGES:
-                    setattr(mod, k, jit_of(v, boundscheck=True))
-            bc = jit_of(fn, boundscheck=True)
-            bc.compile(_stage_sig(stage, ns))
-        except Exception as e:  # pragma: no cover (it compiled a moment ago without)
-            from .user import compile_error
+    checked = {}
+    try:
+        vars(mod).update({k: jit_of(v, boundscheck=True) for k, v in saved.items()
+                          if k not in STAGES})
+        for stage in alg.stages:
+            try:
+                checked[stage] = jit_of(getattr(mod, stage), boundscheck=True)
+                checked[stage].compile(_stage_sig(stage, ns))
+            except Exception as e:  # pragma: no cover (it compiled a moment ago without)
+                from .user import compile_error
 
-            raise compile_error(path, stage, e) from None
-        finally:
-            for k, v in saved.items():
-                setattr(mod, k, v)
+                raise compile_error(path, stage, e) from None
+    finally:
+        vars(mod).update(saved)
+    for stage, bc in checked.items():
         what = "parameters at their defaults"
         try:
             for label, pv in _param_sets(alg, p):

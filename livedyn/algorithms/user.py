@@ -61,14 +61,15 @@ from pathlib import Path
 import numpy as np
 
 from ..params import (
-    ALL, KEY_EXTERNAL, LAW_COMPRESSOR, LAW_USER, MAX_USER_LATENCY, NPARAM, P_SAMPLERATE, USER_SLOT0, Param, ParamError, Schema,
+    ALL, KEY_EXTERNAL, LAW_COMPRESSOR, LAW_USER, MAX_USER_LATENCY, NPARAM, P_SAMPLERATE,
+    USER_SLOT0, Param, ParamError, Schema,
 )
 
 __all__ = ["UserAlgorithmError", "load", "user_param", "is_user_file", "STAGES", "MAX_STATE"]
 
 STAGES = ("detector", "gain_curve", "smoother", "kernel")
 MAX_STATE = 4096  # declared state slots per channel
-_CACHE = {}  # (path, digest) -> Algorithm: each version of a file is compiled and checked once
+_CACHE = {}  # (path, digest, checked) -> Algorithm: each version is compiled and checked once
 _CACHE_LOCK = threading.Lock()
 
 
@@ -98,8 +99,9 @@ def _user_line(path, exc):
     return lines[-1].lineno if lines else None
 
 
-def _where(path, exc):
-    line = _user_line(path, exc)
+def _where(path, exc, line=None):
+    """``path:line`` for the user's line (``line``, or the deepest in ``exc``'s traceback)."""
+    line = line or _user_line(path, exc)
     return f"{path}:{line}" if line else str(path)
 
 
@@ -322,8 +324,6 @@ def compile_error(path, what, exc):
                 line = m.group(2)
         except OSError:
             pass
-    if not line:
-        line = str(_user_line(path, exc) or "")
     reason = ""
     lines = [ln.strip() for ln in text.splitlines()]
     for i, s in enumerate(lines):
@@ -338,10 +338,9 @@ def compile_error(path, what, exc):
     reason = reason or type(exc).__name__
     if len(reason) > 160:
         reason = reason[:157] + "..."
-    where = f"{path}:{line}" if line else str(path)
-    return UserAlgorithmError(f"{where}: {what} does not compile in nopython mode: {reason} "
-                              f"(livedyn check {path.name} --full shows the compiler's message)",
-                              text)
+    return UserAlgorithmError(f"{_where(path, exc, line)}: {what} does not compile in nopython "
+                              f"mode: {reason} (livedyn check {path.name} --full shows the "
+                              "compiler's message)", text)
 
 
 def jit_of(fn, **flags):

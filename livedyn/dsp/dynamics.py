@@ -31,8 +31,8 @@ from ..params import (
 )
 from .calls import call_curve, call_stage
 from .layout import (
-    NROWS, C_BPF, C_HPF, C_LPF, R_BPZ, R_ENV, R_ENV1, R_FB, R_GAIN, R_HOLD, R_HPZ, R_LPZ, R_MEAS, R_MS,
-    R_OPEN, R_Y, R_Y1, S_AUTOMAKEUP_DB, S_CEIL, S_DCUR, S_DOLD, S_FRAMES, S_GR_MAX, S_HYST,
+    C_BPF, C_HPF, C_LPF, NROWS, R_BPZ, R_ENV, R_ENV1, R_FB, R_GAIN, R_HOLD, R_HPZ, R_LPZ, R_MEAS,
+    R_MS, R_OPEN, R_Y, R_Y1, S_AUTOMAKEUP_DB, S_CEIL, S_DCUR, S_DOLD, S_FRAMES, S_GR_MAX, S_HYST,
     S_KNEE, S_MAKEUP, S_MIX, S_NONFINITE, S_RANGE, S_READY, S_SLOPE, S_THR, S_WPOS, S_XF,
     T_CURVE, T_GAIN, T_KEY, T_LEVEL, T_TOTAL,
 )

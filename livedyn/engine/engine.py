@@ -542,11 +542,8 @@ class Engine:
             seq = int(cb.publish_params(self.ud, self.pend))
             self._changes.append((seq, prm.name, v))
             if prm.name in ("lookahead", "true_peak"):
-                self.ud[cb.U_LATENCY] = self._latency_of(self.pend)
+                self.ud[cb.U_LATENCY] = self.proc.latency_for(self.pend)  # reads pend only
             return seq
-
-    def _latency_of(self, p):
-        return self.proc.latency_for(p)  # reads p only: the live array is not touched
 
     def get(self, name):
         return float(self.pend[self.proc.schema[name].slot])
@@ -628,8 +625,7 @@ class Engine:
             job = self.jobs[nxt]
             self._fill_job(job, new, self.y2)
             self._slot_owner[nxt] = new
-            self.table[nxt, 0] = _job_function(alg).address
-            self.table[nxt, 1] = job.ctypes.data
+            self.table[nxt, 0] = _job_function(alg).address  # (its job address is fixed)
             lat = new.latency_samples
             self.ud[cb.U_SWAP_SLOT] = nxt
             self.ud[cb.U_SWAP_WARM] = lat + self.blocksize if lat > 0 else 0
