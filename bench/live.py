@@ -92,7 +92,8 @@ def _start_server(headless, samplerate, blocksize, realtime, device):
     return server, "system"
 
 
-def _engine(proc, samplerate, channels, key_channels, blocksize, device, instances=1):
+def _engine(proc, samplerate, channels, key_channels, blocksize, device, instances=1,
+            realtime=True):
     """An Engine playing 4 s of seeded noise in 0.1 s steps of level, looped (its first channel
     also as the key when the processor takes one)."""
     from livedyn.engine.engine import ArraySource, Engine
@@ -103,7 +104,7 @@ def _engine(proc, samplerate, channels, key_channels, blocksize, device, instanc
            np.repeat(rng.uniform(0.05, 1.0, n // 4800 + 1), 4800)[:n, None])
     key = ArraySource(sig[:, :1], loop=True) if key_channels else None
     return Engine(proc, blocksize, device=device, main_source=ArraySource(sig, loop=True),
-                  key_source=key, instances=instances, meters=False)
+                  key_source=key, instances=instances, meters=False, realtime=realtime)
 
 
 DEFAULT_SETTINGS = {"compressor": {"key_hpf": 100.0, "lookahead": 5.0}}
@@ -122,7 +123,8 @@ def run_stream(seconds=10.0, algorithm="compressor", instances=1, samplerate=480
 
         kch = 1 if algorithms.get(algorithm).needs_key else 0
         proc = _processor(algorithm, samplerate, channels, kch, settings)
-        eng = _engine(proc, samplerate, channels, kch, blocksize, device, instances=instances)
+        eng = _engine(proc, samplerate, channels, kch, blocksize, device, instances=instances,
+                      realtime=realtime)
         rss0 = _rss_kib()
         with _Load(load) as ld:
             eng.start()
@@ -145,6 +147,7 @@ def run_stream(seconds=10.0, algorithm="compressor", instances=1, samplerate=480
             "stream_latency_s": snap.get("stream_latency_s"),
             "realtime_granted": bool(server.realtime_granted) if server else None,
             "realtime_threads": snap.get("realtime_threads"),
+            "realtime": snap.get("realtime"),
             "callback_shares": shares,  # per block; not written to JSON
         }
         if out:
@@ -209,7 +212,7 @@ def run_swap(swaps=10, algorithm="compressor", samplerate=48000, blocksize=64, c
         proc = _processor(alg, samplerate, channels, kch,
                           DEFAULT_SETTINGS.get(algorithm, {}) if isinstance(algorithm, str)
                           else {})
-        eng = _engine(proc, samplerate, channels, kch, blocksize, device)
+        eng = _engine(proc, samplerate, channels, kch, blocksize, device, realtime=realtime)
         infos = []
         eng.start()
         try:

@@ -223,7 +223,8 @@ def cmd_demo(args):
                     str(out / "live"), "--no-ui", "--samplerate", str(args.samplerate),
                     "--stats-json", str(out / "live" / "stats.json")]
         cmd_run(build_parser().parse_args(
-            run_args + (["--headless", "--realtime"] if headless else [])))
+            run_args + (["--headless"] if headless else [])
+            + (["--no-realtime"] if args.no_realtime else [])))
         print()
     print(f"Offline: synthesising the rehearsal scenario ({args.seconds:g} s at {args.samplerate} Hz) "
           f"into {out}/")
@@ -403,16 +404,19 @@ def _cmd_run(args):
         need_in = max([2] + (main_in or []) + (key_in or []))
         need_out = max([2] + (outs or []))
         server = JackServer(int(fs), args.blocksize, capture=need_in, playback=need_out,
-                            realtime=args.realtime).start()
+                            realtime=not args.no_realtime).start()
         st.reinitialise()
         print(f"headless: JACK server {server.name} (dummy backend, {fs:g} Hz, "
               f"{args.blocksize} frames, real time {'granted' if server.realtime_granted else 'off'})",
               flush=True)
+        if server.realtime_note and not args.no_realtime:
+            print(server.realtime_note, flush=True)
     try:
         eng = Engine(proc, args.blocksize, device=args.device if not args.headless else "system",
                      input_device=args.input_device, output_device=args.output_device,
                      main_inputs=main_in, key_inputs=key_in, outputs=outs, main_source=main_src,
-                     key_source=key_src, record_dir=args.record, monitor=args.monitor)
+                     key_source=key_src, record_dir=args.record, monitor=args.monitor,
+                     realtime=not args.no_realtime)
         print(f"{proc.algorithm.name}: " +
               ", ".join(f"{k} {v}" for k, v in proc.describe().items()))
         print(f"latency: processor {proc.latency_samples} samples", end="")
@@ -431,6 +435,9 @@ def _cmd_run(args):
         raise
     print(f"; stream reports input {1000 * eng.stream.input_latency:.2f} ms, output "
           f"{1000 * eng.stream.output_latency:.2f} ms", flush=True)
+    from .engine.realtime import describe
+
+    print(describe(eng.wait_realtime(1.0)), flush=True)
     watcher = None
     if args.watch:
         from .engine.watch import FileWatcher
@@ -454,7 +461,8 @@ def _cmd_run(args):
     if args.stats_json:
         from .presets import write_text_atomic
 
-        snap["realtime_granted"] = bool(server.realtime_granted) if server else None
+        snap["realtime_granted"] = bool(snap["realtime"]["granted"])  # the callback's thread
+        snap["server_realtime"] = bool(server.realtime_granted) if server else None
         write_text_atomic(args.stats_json, json.dumps(snap, indent=2, default=float) + "\n")
     if failure:
         print(f"livedyn: error: {failure}", file=sys.stderr, flush=True)
@@ -662,6 +670,8 @@ def build_parser():
     d.add_argument("--offline-only", action="store_true", help="skip the live part")
     d.add_argument("--headless", action="store_true",
                    help="run the live part on a JACK dummy server even if a soundcard exists")
+    d.add_argument("--no-realtime", action="store_true",
+                   help="do not ask for real-time scheduling or lock memory for the live part")
     d.set_defaults(func=cmd_demo)
 
     rn = sub.add_parser("run", help="run a processor live on a soundcard or headless",
@@ -697,8 +707,12 @@ def build_parser():
                     help="headless: patch the outputs back to the inputs (latency checks)")
     rn.add_argument("--watch", action="store_true",
                     help="reload the algorithm file when it changes, without a dropout")
-    rn.add_argument("--realtime", action="store_true",
-                    help="ask for real-time scheduling where the system allows it")
+    rtg = rn.add_mutually_exclusive_group()
+    rtg.add_argument("--no-realtime", action="store_true",
+                     help="do not ask for real-time scheduling nor lock memory (by default "
+                          "livedyn asks for both where the system allows it)")
+    rtg.add_argument("--realtime", action="store_true",
+                     help="the default (kept so that older scripts still run)")
     rn.set_defaults(func=cmd_run)
 
     bn = sub.add_parser("bench", help="what an algorithm costs, stream headroom, swaps, latency",
@@ -724,7 +738,8 @@ def build_parser():
     bn.add_argument("--blocksize", type=int, default=64)
     bn.add_argument("--device", help="measure on this device instead of a headless server")
     bn.add_argument("--no-realtime", action="store_true",
-                    help="do not ask for real-time scheduling on the headless server")
+                    help="do not ask for real-time scheduling (server and stream) nor lock "
+                         "memory")
     bn.add_argument("--json", metavar="FILE")
     bn.add_argument("--plot", metavar="DIR", help="write PNG plots here (plot extra)")
     bn.set_defaults(func=cmd_bench)

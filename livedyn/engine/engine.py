@@ -20,6 +20,7 @@ from ..meters import MeterSet
 from ..params import MAX_USER_LATENCY, NPARAM, ParamError
 from ..processor import Processor
 from . import callback as cb
+from . import realtime as rt
 from .stream import DeviceError, NativeStream, find_device
 
 RING_SECONDS = 1.0
@@ -136,14 +137,21 @@ class Engine:
         Write main.wav, key.wav, out.wav and automation.txt there.
     ceiling_db : float
         Ceiling of the always-on last stage, dBFS.
+    realtime : bool
+        Ask for real time where the system allows it (default): lock the process's memory
+        where the memlock limit allows and ask the host API for a real-time callback thread
+        (see ``engine/realtime.py``). ``snapshot()["realtime"]`` says what was granted.
     """
 
     def __init__(self, processor: Processor, blocksize=64, device=None, input_device=None,
                  output_device=None, main_inputs=None, key_inputs=None, outputs=None,
                  main_source=None, key_source=None, record_dir=None, ceiling_db=-1.0,
                  fade_in_ms=500.0, fade_out_ms=50.0, mute_ms=5.0, max_frames=8192,
-                 monitor="out", meters=True, instances=1):
+                 monitor="out", meters=True, instances=1, realtime=True):
         self.proc = processor
+        self.realtime = bool(realtime)
+        self._memory = (False, "memory not locked (real time not asked)")
+        self._rt_finder = rt.ThreadFinder()
         self.fs = processor.samplerate
         self.blocksize = int(blocksize)
         self.ch = processor.channels
@@ -369,14 +377,18 @@ class Engine:
         for src, ring in ((self.main_source, self.main_ring), (self.key_source, self.key_ring)):
             if src is not None:
                 self._feed(src, ring, until_full=True)
+        if self.realtime:
+            self._memory = rt.lock_memory()
+        rt.prefault(self._callback_arrays())  # no callback runs yet: nothing can change
         # open (and so check rate and channels) before any recording file is created
         self.stream = NativeStream(cb.native_callback.address, self.ud.ctypes.data,
                                    self._devices[0], self._devices[1], self.n_in, self.n_out,
-                                   self.fs, self.blocksize)
+                                   self.fs, self.blocksize, realtime=self.realtime)
         if self.record_dir is not None:
             self._open_writers()
         self.t_start = time.monotonic()
         self.stream.start()
+        self._rt_finder.begin(self.stats[cb.S_BLOCKS])
         for target in (self._feeder_loop, self._tap_loop):
             t = threading.Thread(target=target, daemon=True)
             t.start()
@@ -620,6 +632,7 @@ class Engine:
                 for i in range(0, len(main), blk):
                     new.process(main[i:i + blk], key[i:i + blk] if key is not None else None)
             t_prime = time.monotonic() - t0
+            rt.prefault((new.p, new.st, new.ring))  # not yet seen by the callback
             cur = int(self.ud[cb.U_KSLOT])
             nxt = 1 - cur
             job = self.jobs[nxt]
@@ -759,8 +772,48 @@ class Engine:
             snap["stream_latency_s"] = {"input": self.stream.input_latency,
                                         "output": self.stream.output_latency}
         snap["realtime_threads"] = realtime_threads()
+        snap["realtime"] = self.realtime_info()
         snap["meters"] = self._snapshot_meters
         return snap
+
+    def _callback_arrays(self):
+        """Every array the callback may touch (the running and the spare slot's, the extra
+        instances', the rings'), for :func:`realtime.prefault`."""
+        arrays = [self.ud, self.stats, self.x, self.k, self.y, self.y2, self.y_extra,
+                  self.main_map, self.key_map, self.out_map, self.pend, self.ptmp, self.safe,
+                  self.dry, self.meter, self.elring, self.seqlog, self.trace, self.table,
+                  self.jobs[1], self.extra_table, self.proc.p, self.proc.st, self.proc.ring]
+        for r in (self.main_ring, self.key_ring, self.tap_ring):
+            if r is not None:
+                arrays += list(r)
+        for twin, ej in self._extra:
+            arrays += [twin.p, twin.st, twin.ring, ej]
+        return arrays
+
+    def realtime_info(self):
+        """What real time was granted: the callback thread's scheduling policy and priority
+        (found from outside the callback, see ``realtime.ThreadFinder``; "unknown" until about
+        20 blocks have run), whether memory is locked, the host API and what was asked of it."""
+        tid = self._rt_finder.find(self.stats[cb.S_BLOCKS]) if self.stream is not None else None
+        policy, prio = rt.thread_policy(tid) if tid is not None else ("unknown", 0)
+        locked, note = self._memory
+        s = self.stream
+        return {"requested": self.realtime, "granted": policy in rt.REALTIME_POLICIES,
+                "policy": policy, "priority": prio, "thread": tid,
+                "memory_locked": bool(locked and rt.memory_locked() > 0), "memory": note,
+                "host_api": s.host_api if s is not None else None,
+                "host_request": s.host_realtime if s is not None else None}
+
+    def wait_realtime(self, timeout=1.0):
+        """:meth:`realtime_info` once the callback's thread is identified (or after
+        ``timeout`` seconds)."""
+        t_end = time.monotonic() + timeout
+        while time.monotonic() < t_end and self.stream is not None:
+            info = self.realtime_info()
+            if info["thread"] is not None:
+                return info
+            time.sleep(0.02)
+        return self.realtime_info()
 
     # ---- recording of parameter changes -------------------------------------------------------
     def _record_initial(self):

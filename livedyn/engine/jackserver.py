@@ -42,7 +42,7 @@ atexit.register(_stop_all)
 
 
 class JackServer:
-    """``jackd -n NAME --no-realtime -d dummy -r RATE -p PERIOD -w WAIT -C IN -P OUT``.
+    """``jackd -n NAME -R -d dummy -r RATE -p PERIOD -w WAIT -C IN -P OUT``.
 
     Parameters
     ----------
@@ -53,11 +53,12 @@ class JackServer:
     sync : bool
         Synchronous mode (``-S``): the server waits for its clients each cycle.
     realtime : bool
-        Ask for real-time scheduling (``-R``); falls back to ``--no-realtime`` when refused.
+        Ask for real-time scheduling (``-R``, the default); when the system refuses, start with
+        ``--no-realtime`` and say why in :attr:`realtime_note`.
     """
 
     def __init__(self, samplerate=48000, period=64, capture=2, playback=2, sync=True,
-                 realtime=False, name=None):
+                 realtime=True, name=None):
         if shutil.which("jackd") is None:
             raise JackError("jackd not found: install the jackd2 package "
                             "(apt-get install --no-install-recommends jackd2)")
@@ -70,6 +71,7 @@ class JackServer:
         self.name = name or f"livedyn-{os.getpid()}-{uuid.uuid4().hex[:6]}"
         self.proc = None
         self.realtime_granted = False
+        self.realtime_note = "" if realtime else "real time not asked (--no-realtime)"
         self._log = None
 
     # -- environment for clients ---------------------------------------------------------------
@@ -93,12 +95,24 @@ class JackServer:
     # -- life cycle ----------------------------------------------------------------------------
     def start(self, timeout=10.0):
         self.apply_env()
+        refused = ""
         for realtime in ([True, False] if self.realtime else [False]):
             self._spawn(realtime)
-            if self._wait_ready(timeout):
+            ready = self._wait_ready(timeout)
+            if ready and realtime and self._refused_line():
+                # jackd -R keeps running without real time when the system refuses it (and its
+                # clients then fail to get it too): start again, plainly, and say so
+                ready = False
+            if ready:
                 self.realtime_granted = realtime
+                if self.realtime and not realtime:
+                    self.realtime_note = (
+                        f"the JACK server runs without real time: jackd -R was refused "
+                        f"({refused}); allow real-time priority (rtprio) for your user, "
+                        "see 'livedyn ready'")
                 _LIVE.add(self)
                 return self
+            refused = self._refused_line() or self.last_output(limit=120)
             self.stop()
         raise JackError(f"the JACK server {self.name} did not start: {self.last_output()}")
 
@@ -127,6 +141,20 @@ class JackServer:
                 pass
             time.sleep(0.05)
         return False
+
+    def _refused_line(self):
+        """jackd's own line saying that real-time scheduling was refused, or ''."""
+        if self._log is None:
+            return ""
+        try:
+            self._log.seek(0)
+            text = self._log.read().decode(errors="replace")
+        except (OSError, ValueError):
+            return ""
+        for line in text.splitlines():
+            if "Cannot use real-time scheduling" in line:
+                return line.strip()
+        return ""
 
     def alive(self):
         return self.proc is not None and self.proc.poll() is None

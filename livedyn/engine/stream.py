@@ -80,7 +80,7 @@ class NativeStream:
     """A PortAudio duplex stream driven by a native callback address."""
 
     def __init__(self, callback_address, user_address, in_device, out_device, in_channels,
-                 out_channels, samplerate, blocksize):
+                 out_channels, samplerate, blocksize, realtime=True):
         sd = _sd()
         self._sd = sd
         ffi, lib = sd._ffi, sd._lib
@@ -95,14 +95,23 @@ class NativeStream:
                               f"{out_channels} requested")
         qi = sd.query_devices(in_device)
         qo = sd.query_devices(out_device)
+        from . import realtime as rt
+
+        api = lib.Pa_GetHostApiInfo(qo["hostapi"])
+        self.host_api = din["hostapi"] if din["hostapi"] == dout["hostapi"] else \
+            f"{din['hostapi']} / {dout['hostapi']}"
+        self.host_api_type = int(api.type) if api != ffi.NULL else -1
+        self._rt_in = rt.host_stream_info(ffi, lib, self.host_api_type, realtime)
+        self._rt_out = rt.host_stream_info(ffi, lib, self.host_api_type, realtime)
         pin = ffi.NULL
         if in_channels > 0:
             self._in = ffi.new("PaStreamParameters*", (
                 in_device, in_channels, lib.paFloat32, qi["default_low_input_latency"],
-                ffi.NULL))
+                self._rt_in))
             pin = self._in
         self._out = ffi.new("PaStreamParameters*", (
-            out_device, out_channels, lib.paFloat32, qo["default_low_output_latency"], ffi.NULL))
+            out_device, out_channels, lib.paFloat32, qo["default_low_output_latency"],
+            self._rt_out))
         err = lib.Pa_IsFormatSupported(pin, self._out, float(samplerate))
         if err != 0:
             raise DeviceError(f"samplerate {samplerate:g} Hz with {in_channels} in / "
@@ -117,6 +126,8 @@ class NativeStream:
             raise DeviceError(f"cannot open {din['name']!r} at {samplerate:g} Hz, block "
                               f"{blocksize}: {self._text(err)}")
         self.ptr = pp[0]
+        # before the stream starts: the host creates its callback thread at start
+        self.host_realtime = rt.enable_host_realtime(sd, self.ptr, self.host_api_type, realtime)
         info = lib.Pa_GetStreamInfo(self.ptr)
         self.input_latency = float(info.inputLatency)
         self.output_latency = float(info.outputLatency)
