@@ -170,6 +170,32 @@ def cmd_measure(args):
     return 0
 
 
+def cmd_ready(args):
+    """Whether this machine can run the chosen block size: limits, governor, kernel, swap,
+    sound devices and a native wake-up measurement. Exit code 1 when an item fails."""
+    from . import readiness
+
+    if args.json and args.json != "-":
+        _check_target(args.json, "--json")
+    try:
+        rep = readiness.check(samplerate=args.samplerate, blocksize=args.blocksize,
+                              seconds=args.seconds,
+                              out=None if args.json == "-" else
+                              (lambda t: print(t, file=sys.stderr, flush=True)))
+    except readiness.ReadinessError as e:
+        raise CliError(str(e)) from None
+    if args.json == "-":
+        sys.stdout.write(readiness.to_json(rep))
+    else:
+        print(readiness.format_report(rep))
+        if args.json:
+            from .presets import write_text_atomic
+
+            write_text_atomic(args.json, readiness.to_json(rep))
+            print(f"report written to {args.json}")
+    return 1 if rep["verdict"] == readiness.FAIL else 0
+
+
 def cmd_presets(args):
     from . import presets
 
@@ -760,6 +786,21 @@ def build_parser():
 
     dv = sub.add_parser("devices", help="list audio devices", description="List audio devices.")
     dv.set_defaults(func=cmd_devices)
+
+    rd = sub.add_parser("ready", help="can this machine run live at this block size?",
+                        description="Check this machine before a show: real-time priority and "
+                                    "locked-memory limits, CPU governor, kernel preemption, "
+                                    "swap, sound devices in use, and how late a native "
+                                    "real-time thread wakes at each block size. Changes "
+                                    "nothing. Exit code 1 when an item fails.")
+    rd.add_argument("--samplerate", type=float, default=48000.0)
+    rd.add_argument("--blocksize", type=int, default=64, metavar="N",
+                    help="the block size to judge (also measured beside 16 to 1024)")
+    rd.add_argument("--seconds", type=float, default=2.0, metavar="S",
+                    help="measurement time per block size (default 2)")
+    rd.add_argument("--json", metavar="FILE",
+                    help="also write the report as JSON ('-': JSON only, on stdout)")
+    rd.set_defaults(func=cmd_ready)
 
     ps = sub.add_parser("presets", help="list the shipped presets",
                         description="List the shipped presets.")

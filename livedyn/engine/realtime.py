@@ -147,8 +147,10 @@ def prefault(arrays):
             continue
         flat = a.reshape(-1)
         step = max(1, page // flat.itemsize)
-        flat[::step] = flat[::step]
-        flat[-1:] = flat[-1:]
+        # through a copy: numpy skips an assignment whose source is its own destination, which
+        # would leave the pages untouched (and reading a fresh page maps only the zero page)
+        flat[::step] = flat[::step].copy()
+        flat[-1:] = flat[-1:].copy()
         pages += -(-flat.nbytes // page)
     return pages
 
