@@ -276,3 +276,20 @@ def test_headless_server_falls_back_with_one_line_when_real_time_is_refused(tmp_
         assert "--no-realtime" in s.proc.args
     finally:
         s.stop()
+
+
+def test_console_stats_line_shows_the_grant_when_wide_enough():
+    from prompt_toolkit.input import create_pipe_input
+
+    from tests.test_console import FakeEngine, render
+
+    e = FakeEngine()
+    e.snap["realtime"] = {"policy": "SCHED_FIFO", "priority": 5, "granted": True,
+                          "memory_locked": True}
+    with create_pipe_input() as pipe:
+        _, wide = render(e, pipe, 140, 40)
+        assert "rt fifo 5 locked" in wide
+        e.snap["realtime"] = {"policy": "SCHED_OTHER", "priority": 0, "granted": False,
+                              "memory_locked": False}
+        _, plain = render(e, pipe, 140, 40)
+        assert "rt other" in plain and "locked" not in plain

@@ -303,6 +303,11 @@ def draw_meters(m, width, height):
     text = (f"dsp {100 * load.get('median', 0.0):.1f} % (max {100 * load.get('max', 0.0):.0f} %)"
             f"  late {snap.get('late_blocks', 0)}  flagged {snap.get('flagged_blocks', 0)}"
             f"  latency {lat_txt}  lookahead {la_txt}")
+    rt = snap.get("realtime") or {}
+    if rt.get("policy") not in (None, "unknown"):  # what real time the callback was granted
+        text += (f"  rt {rt['policy'].replace('SCHED_', '').lower()}"
+                 + (f" {rt['priority']}" if rt.get("granted") else "")
+                 + (" locked" if rt.get("memory_locked") else ""))
     if len(text) > width:
         text = (f"dsp {100 * load.get('median', 0.0):.1f}% max {100 * load.get('max', 0.0):.0f}%"
                 f"  late {snap.get('late_blocks', 0)} flagged {snap.get('flagged_blocks', 0)}"
