@@ -395,6 +395,8 @@ def check(samplerate=48000, blocksize=64, seconds=2.0, sizes=BLOCKSIZES, out=Non
 
     ``out``, if given, is called with a line of progress while the measurement runs.
     """
+    if not sys.platform.startswith("linux"):
+        raise ReadinessError(f"livedyn ready checks Linux systems only (this is {sys.platform})")
     if not 8000 <= samplerate <= 384000:
         raise ReadinessError(f"--samplerate {samplerate:g}: expected 8000 to 384000 Hz")
     if not 16 <= blocksize <= 8192:

@@ -195,3 +195,9 @@ def test_limits_items_say_how_to_raise_them():
         if item.status != "OK":
             assert "/etc/security/limits.d/" in item.hint and "audio group" in item.hint
             assert "distribution" in item.hint
+
+
+def test_other_systems_are_refused_in_one_line(monkeypatch):
+    monkeypatch.setattr(rd.sys, "platform", "darwin")
+    with pytest.raises(rd.ReadinessError, match="Linux systems only .this is darwin"):
+        rd.check(seconds=0.1)
