@@ -293,3 +293,17 @@ def test_console_stats_line_shows_the_grant_when_wide_enough():
                               "memory_locked": False}
         _, plain = render(e, pipe, 140, 40)
         assert "rt other" in plain and "locked" not in plain
+
+
+def test_run_demo_and_bench_take_no_realtime_and_run_keeps_realtime(capsys):
+    from livedyn.cli import build_parser
+
+    ap = build_parser()
+    assert ap.parse_args(["run"]).no_realtime is False  # real time is the default
+    assert ap.parse_args(["run", "--realtime"]).no_realtime is False  # old flag: the default
+    assert ap.parse_args(["run", "--no-realtime"]).no_realtime is True
+    assert ap.parse_args(["demo", "--no-realtime"]).no_realtime is True
+    assert ap.parse_args(["bench", "stream", "--no-realtime"]).no_realtime is True
+    with pytest.raises(SystemExit) as e:
+        ap.parse_args(["run", "--realtime", "--no-realtime"])
+    assert e.value.code == 2 and "not allowed with" in capsys.readouterr().err
