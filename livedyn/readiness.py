@@ -283,8 +283,8 @@ def build_wakeup(cache=None):
 
 
 def _priority():
-    """The priority the measuring thread asks for: WAKE_PRIORITY, lowered to the rtprio limit
-    (0: none, the default policy)."""
+    """The priority the measuring thread asks for: WAKE_PRIORITY, lowered to a smaller rtprio
+    limit but never below 1, so that a limit of 0 is tried and refused by the system itself."""
     import resource
 
     if rt.has_capability(rt.CAP_SYS_NICE):
@@ -292,7 +292,16 @@ def _priority():
     soft = resource.getrlimit(resource.RLIMIT_RTPRIO)[0]
     if soft == resource.RLIM_INFINITY:
         return WAKE_PRIORITY
-    return int(min(WAKE_PRIORITY, soft))
+    return int(max(1, min(WAKE_PRIORITY, soft)))
+
+
+def _realtime_allowed():
+    """Whether the system should grant the measuring thread its priority (CAP_SYS_NICE, or an
+    rtprio limit of at least 1; sched(7))."""
+    import resource
+
+    soft = resource.getrlimit(resource.RLIMIT_RTPRIO)[0]
+    return rt.has_capability(rt.CAP_SYS_NICE) or soft == resource.RLIM_INFINITY or soft >= 1
 
 
 def measure_wakeup(samplerate=48000, blocksize=64, seconds=1.0, lib=None, priority=None):
