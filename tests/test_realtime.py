@@ -76,8 +76,8 @@ print(pages, control, after, int(np.array_equal(b, np.arange(1000, dtype=np.floa
 
 def test_prefault_writes_every_page_and_keeps_the_values():
     """In a fresh process (this one may have its memory locked already, which faults every
-    page in by itself), on memory in small pages: touching 32 MiB after prefault costs almost no page fault, where the
-    same touch without it costs about one per page."""
+    page in by itself), on memory in small pages: touching 32 MiB after prefault costs almost
+    no page fault, where the same touch without it costs about one per page."""
     import sys
 
     r = subprocess.run([sys.executable, "-c", PREFAULT_CHILD], capture_output=True, text=True,
