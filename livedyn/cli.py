@@ -109,8 +109,14 @@ def cmd_measure(args):
         _check_target(args.json, "--json")
     make = _factory(args)
     proc = make()
+    import textwrap
+
+    settings = ", ".join(f"{k} {v}" for k, v in proc.describe().items())
     title = f"{proc.algorithm.name} at {args.samplerate:g} Hz"
-    print(title + ": " + ", ".join(f"{k} {v}" for k, v in proc.describe().items()))
+    print(title + ": " + settings)
+    # plot titles carry the settings, wrapped to the figure's width
+    title = "\n".join(textwrap.wrap(f"{title}: {settings}", 95))
+    keyed = proc.algorithm.needs_key and proc.algorithm.kind == "dynamics"
     want_plot = args.plot is not None
     if want_plot and not analysis.have_matplotlib():
         print("(no plots: install the plot extra, pip install 'livedyn[plot]')")
@@ -121,8 +127,7 @@ def cmd_measure(args):
     if args.what == "curve":
         signals = ("square", "sine") if args.signal == "both" else (args.signal,)
         rows = analysis.static_curve(make, signals=signals)
-        what = "key level" if proc.algorithm.law == 3 and proc.algorithm.kind == "dynamics" \
-            else "input"
+        what = "key level" if keyed else "input"
         print(f"{what + ', dBFS':>16}{'signal':>8}{'output, dBFS':>14}{'theory':>9}{'error, dB':>11}")
         for r in rows:
             print(f"{r.level_db:16.1f}{r.signal:>8}{r.measured_db:14.2f}{r.theory_db:9.2f}"
@@ -133,24 +138,53 @@ def cmd_measure(args):
                   "the main input here)")
         elif sq:
             print(f"largest square-wave error: {max(sq):.3f} dB")
+        vals = proc.values()
+        if int(vals.get("detector", 0)) == 1 and proc.algorithm.kind == "dynamics":
+            print("(rms detector: it is sine-referenced, so a square reads 3.01 dB above its "
+                  "peak; the theory uses that reading)")
+        if int(vals.get("topology", 0)) == 1 and proc.algorithm.law == 0:
+            print("(feedback: the theory is the output y solving y = x + g(y), with the curve "
+                  "on the output level at slope ratio - 1)")
+        if vals.get("true_peak", 0) > 0.5 and proc.algorithm.kind == "limiter":
+            print("(true peak: the theory uses the 4x interpolated peak of the test signal, "
+                  "which for a square lies above its sample peak)")
         result["curve"] = [r.__dict__ for r in rows]
         if want_plot:
             path = Path(args.plot) / "curve.png"
-            analysis.plot("curve", rows, path, title)
+            analysis.plot("curve", rows, path, title,
+                          x_label=("key level, dBFS" if keyed else "input level, dBFS"))
             print(f"plot: {path}")
     elif args.what == "timing":
         rows = analysis.timing(make)
-        print(f"{'phase':>8}{'setting, ms':>13}{'tau (63 %), ms':>16}{'10-90 %, ms':>13}")
+        print(f"{'phase':>8}{'setting, ms':>13}{'hold, ms':>10}{'tau (63 %), ms':>16}"
+              f"{'ramp, ms':>10}{'10-90 %, ms':>13}  law")
         for r in rows:
-            print(f"{r.phase:>8}{r.setting_ms:13.2f}{r.tau_ms:16.2f}{r.rise_10_90_ms:13.2f}")
-        print("(tau is the documented meaning of attack and release; 10-90 % = 2.197 tau for a "
-              "one-pole)")
-        result["timing"] = [r.__dict__ for r in rows]
+            tau = "" if r.law == "linear ramp" else f"{r.tau_ms:.2f}"
+            ramp = f"{r.ramp_ms:.2f}" if r.law == "linear ramp" else ""
+            print(f"{r.phase:>8}{r.setting_ms:13.2f}{r.hold_ms:10.2f}{tau:>16}{ramp:>10}"
+                  f"{r.rise_10_90_ms:13.2f}  {r.law}")
+        if proc.algorithm.kind == "limiter":
+            print("(the limiter's attack is a straight ramp of the linear gain over attack ms "
+                  "(plus one sample), starting when a peak enters the lookahead; its release "
+                  "is a one-pole of tau release in dB, after the lookahead's hold)")
+        else:
+            print("(tau, counted from the first movement after the hold, is the documented "
+                  "meaning of attack and release; 10-90 % = 2.197 tau for a one-pole)")
+        result["timing"] = [r.as_dict() for r in rows]
+        if want_plot:
+            path = Path(args.plot) / "timing.png"
+            analysis.plot("timing", rows, path, title)
+            print(f"plot: {path}")
     elif args.what == "latency":
         measured, reported = analysis.latency(make)
         print(f"latency: measured {measured} samples from an impulse, reported {reported} "
               f"samples ({1000 * reported / args.samplerate:.3f} ms)")
         result["latency"] = {"measured": measured, "reported": reported}
+        if want_plot:
+            x, y = analysis.impulse_response(make)
+            path = Path(args.plot) / "latency.png"
+            analysis.plot("latency", (x, y, args.samplerate), path, title)
+            print(f"plot: {path}")
     elif args.what == "distortion":
         rows = analysis.distortion(make, freq=args.frequency)
         if not rows:

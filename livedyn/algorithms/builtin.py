@@ -71,7 +71,7 @@ BUILTINS = {
             "downward expander: below threshold, output falls `ratio` dB per dB, down to -range",
             Schema.of(
                 threshold=-45.0, ratio=2.0, knee=6.0, range=40.0, hysteresis=0.0, attack=1.0,
-                release=100.0, hold=20.0, makeup=0.0, detector="peak", rms_time=10.0,
+                release=100.0, hold=20.0, start="closed", makeup=0.0, detector="peak", rms_time=10.0,
                 lookahead=0.0, mix=100.0, ceiling=0.0, **_KEY,
             ),
             "dynamics", LAW_EXPANDER,
@@ -81,7 +81,7 @@ BUILTINS = {
             "noise gate: opens above threshold, closes below threshold - hysteresis, to -range",
             Schema.of(
                 threshold=-45.0, hysteresis=4.0, range=60.0, attack=0.5, release=80.0,
-                hold=50.0, makeup=0.0, detector="peak", rms_time=10.0, lookahead=0.0,
+                hold=50.0, start="closed", makeup=0.0, detector="peak", rms_time=10.0, lookahead=0.0,
                 mix=100.0, ceiling=0.0, **_KEY,
             ),
             "dynamics", LAW_GATE,

@@ -21,13 +21,14 @@ import math
 import numba as nb
 
 from ..params import (
+    FEEDBACK_MAX_RATIO,
     BALLISTICS_DECOUPLED, DELAY_XFADE_MS, DETECTOR_RMS, DOMAIN_LINEAR, GLIDE_MS, KEY_EXTERNAL,
     LAW_COMPRESSOR, LAW_DUCKER, LAW_EXPANDER, LAW_GATE, LAW_USER, LINK_MEAN, LINK_NONE, P_ATTACK,
     P_AUTOMAKEUP, P_BALLISTICS, P_CEILING, P_DETECTOR, P_DOMAIN, P_HOLD, P_HYSTERESIS, P_KEY,
     P_KEY_BPF, P_KEY_HPF, P_KEY_LPF, P_KEY_Q, P_KNEE, P_LAW, P_LINK, P_LOOKAHEAD, P_MAKEUP,
-    P_MIX, P_RANGE, P_RATIO, P_RELEASE, P_RMS_TIME, P_SAMPLERATE, P_THRESHOLD, P_TOPOLOGY,
+    P_MIX, P_RANGE, P_RATIO, P_RELEASE, P_RMS_TIME, P_SAMPLERATE, P_START, P_THRESHOLD, P_TOPOLOGY,
     P_USER_CURVE, P_USER_DETECTOR, P_USER_SMOOTHER,
-    TOPOLOGY_FEEDBACK,
+    START_CLOSED, TOPOLOGY_FEEDBACK,
 )
 from .calls import call_curve, call_stage
 from .layout import (
@@ -52,6 +53,21 @@ def glide(v, target, g):
     if -1e-9 < d < 1e-9:
         return target
     return v + g * d
+
+
+@nb.njit(**JIT)
+def feedback_slope(slope):
+    """Slope of the gain computer on the output level that gives the set ratio in feedback.
+
+    With the detector on the output, the steady state is y = x + g(y). A hard-knee curve of
+    slope s' above threshold, g(y) = -s' (y - T), gives y = (x + s' T) / (1 + s'), an output
+    slope 1 / (1 + s'); the set ratio R holds when s' = R - 1 = s / (1 - s) with s = 1 - 1/R.
+    An infinite ratio cannot be reached (params.feedback_problem refuses it); s >= 1 returns the
+    largest slope the parameter check lets through, so a glide can never divide by zero.
+    """
+    if slope >= 1.0:
+        return FEEDBACK_MAX_RATIO - 1.0
+    return slope / (1.0 - slope)
 
 
 @nb.njit(**JIT)
@@ -156,6 +172,10 @@ def dynamics_block(x, key, out, p, st, ring, tr):
         st[S_MIX, 0] = t_mix
         st[S_CEIL, 0] = t_ceil
         st[S_HYST, 0] = t_hyst
+        if gate_like and p[P_START] == START_CLOSED:
+            # closed: the state the processor reaches after silence, at the full range
+            for g in range(st.shape[1]):
+                st[R_Y, g] = -t_range
         st[S_READY, 0] = 1.0
     thr = st[S_THR, 0]
     slope = st[S_SLOPE, 0]
@@ -168,6 +188,7 @@ def dynamics_block(x, key, out, p, st, ring, tr):
     gliding = True
     ceil_lin = db_to_amp(ceil)
     mk_auto = -compressor_gain(0.0, thr, slope, knee) if automakeup else 0.0
+    fb_slope = feedback_slope(slope)
 
     d_cur = int(st[S_DCUR, 0])
     d_old = int(st[S_DOLD, 0])
@@ -192,6 +213,7 @@ def dynamics_block(x, key, out, p, st, ring, tr):
             ceil_lin = db_to_amp(ceil)
             if automakeup:
                 mk_auto = -compressor_gain(0.0, thr, slope, knee)
+            fb_slope = feedback_slope(slope)
             gliding = not (thr == t_thr and slope == t_slope and knee == t_knee and mk == t_mk
                            and rng == t_range and mix == t_mix and ceil == t_ceil
                            and hyst == t_hyst)
@@ -283,7 +305,9 @@ def dynamics_block(x, key, out, p, st, ring, tr):
                 x_db = amp_to_db(lv)
 
             if law == LAW_COMPRESSOR:
-                gc = compressor_gain(x_db, thr, slope, knee)
+                # feedback: the curve reads the output level, with the slope that makes the
+                # set ratio hold at steady state (feedback_slope)
+                gc = compressor_gain(x_db, thr, fb_slope if feedback else slope, knee)
             elif law == LAW_DUCKER:
                 gc = ducker_gain(x_db, thr, slope, knee, rng)
             elif law == LAW_USER:

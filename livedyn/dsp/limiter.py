@@ -9,8 +9,14 @@ the delayed sample x[n - L] is built in three steps:
    b[n] = mean(m[n - A .. n]). Every m[j] in that average has r[n - L] inside its window
    (j - L <= n - L <= j), so b[n] <= r[n - L]: the delayed sample cannot pass the ceiling, and
    the gain moves to its target along a straight line over A samples;
-3. release: g[n] = min(b[n], a g[n-1] + (1 - a) b[n]) with the release one-pole a (and hold),
-   which never rises above b.
+3. release: a one-pole on the gain in dB, 20 log10 g[n] = a 20 log10 g[n-1] + (1 - a)
+   20 log10 b[n], with the release coefficient a = exp(-1 / (tau fs)) (and hold), taken only
+   while b[n] is above g[n-1] and clamped to b[n], so it never rises above b. A step of the
+   requirement therefore recovers 63 % of its dB change after tau, as every other release.
+
+The attack is not a one-pole: step 2 turns a step of the requirement into a straight ramp of
+the *linear* gain over A = attack samples, which ends at the sample that needed it (the ramp
+starts L - A samples after that sample entered the lookahead).
 
 A last clamp g <= r of the sample leaving (and of the old delay tap during a lookahead
 crossfade) absorbs floating-point rounding; the kernel counts every sample where it cut the gain
@@ -294,7 +300,9 @@ def limiter_block(x, key, out, p, st, ring, tr):
                 st[R_HOLD, g] -= 1.0
                 gn = gp
             else:
-                gn = a_rel * gp + (1.0 - a_rel) * b
+                # the release one-pole acts on the gain in dB (so tau is 63 % of the recovery
+                # in dB): ln gn = a ln gp + (1 - a) ln b
+                gn = math.exp(a_rel * math.log(gp) + (1.0 - a_rel) * math.log(b))
                 if gn > b:
                     gn = b
             # last clamp: the requirement of the sample(s) this gain is applied to
