@@ -77,7 +77,7 @@ def cmd_render(args):
     summary = render(args.input, args.out, _setup_from(args), key_path=args.key,
                      automation_path=args.automation, trace_dir=args.trace,
                      blocksize=args.blocksize, keep_latency=args.keep_latency,
-                     subtype=args.format)
+                     subtype=args.format, layout=args.layout)
     for line in summary.lines():
         print(line)
     if args.trace:
@@ -671,6 +671,9 @@ def build_parser():
     r.add_argument("--format", choices=["PCM_16", "PCM_24", "PCM_32", "FLOAT"],
                    help="output sample format (default: as the input)")
     r.add_argument("--summary-json", metavar="FILE")
+    r.add_argument("--layout", choices=["mono", "stereo", "5.0", "5.1", "7.1"],
+                   help="channel layout of the loudness figures (BS.1770-4 channel weights: LFE "
+                        "left out, surrounds +1.5 dB); default: from the channel count")
     r.set_defaults(func=cmd_render)
 
     m = sub.add_parser("measure", help="measure a processor: curve, timing, latency, distortion",
