@@ -45,7 +45,7 @@ from ..params import (
     DELAY_XFADE_MS, GLIDE_MS, LINK_NONE, P_ATTACK, P_CEILING, P_HOLD, P_LINK, P_LOOKAHEAD, P_RELEASE,
     P_SAMPLERATE, P_TRUE_PEAK,
 )
-from .dynamics import glide
+from .dynamics import glide, ring_back, tap_fade
 from .layout import (
     S_LIM_NGAIN, S_LIM_TP, R_BOX, R_DQ_HEAD, R_DQ_LEN, R_G, R_GAIN, R_HOLD, R_MEAS, R_TAPS, R_TP, R_TP_POS, RING_DQ_IDX,
     RING_DQ_VAL, RING_M, RING_REQ, S_ATT, S_CEIL, S_CLAMP, S_DCUR, S_DOLD, S_FRAMES, S_GR_MAX,
@@ -339,18 +339,10 @@ def limiter_block(x, key, out, p, st, ring, tr):
                 tr[T_TOTAL, n, g] = gdb
         for c in range(ch):
             g = 0 if ngain == 1 else c
-            # the delayed sample, crossfading from the old delay (written out here rather than
-            # called: a call passing the ring array keeps a reference-count pair per sample)
-            i = w - d_cur
-            if i < 0:
-                i += n_ring
-            xd = ring[i, c]
+            # the delayed sample, crossfading from the old delay (see dynamics.ring_back)
+            xd = ring[ring_back(w, d_cur, n_ring), c]
             if xf > 0.0:
-                j = w - d_old
-                if j < 0:
-                    j += n_ring
-                wgt = 1.0 - xf / xf_len
-                xd = wgt * xd + (1.0 - wgt) * ring[j, c]
+                xd = tap_fade(xd, ring[ring_back(w, d_old, n_ring), c], xf, xf_len)
             out[n, c] = xd * st[R_GAIN, g]
         if xf > 0.0:
             xf -= 1.0
