@@ -204,6 +204,29 @@ def cmd_measure(args):
     return 0
 
 
+def cmd_port_kit(args):
+    from .port.kit import write_kit
+
+    blocks = [int(b) for b in (args.blocksize or [])] or None
+    if blocks is not None and len(blocks) != 2:
+        raise CliError(f"--blocksize given {len(blocks)} times: expected twice (two block "
+                       "sizes) or not at all (64 and 1000)")
+    for w in args.wav or []:
+        if Path(w).resolve().is_relative_to(Path(args.out).resolve()):
+            raise CliError(f"--wav {w}: lies inside --out {args.out}; choose another folder")
+    kw = {} if blocks is None else {"blocksizes": blocks}
+    m = write_kit(args.out, _setup_from(args), samplerate=args.samplerate,
+                  channels=args.channels, wavs=args.wav or (), **kw)
+    print(f"{m['algorithm']}: port kit in {args.out}/ ({m['frames']} frames at "
+          f"{m['samplerate']:g} Hz, {m['channels']} ch, key {m['key_channels']} ch, block sizes "
+          f"{' and '.join(str(b) for b in m['block_sizes'])}, latency {m['latency_samples']} "
+          f"samples)")
+    print(f"  C reference: {m['c_stages']}")
+    print(f"  build and check: make -C {args.out}/c check   (bit for bit: make -C {args.out}/c "
+          "exact)")
+    return 0
+
+
 def cmd_presets(args):
     from . import presets
 
@@ -687,6 +710,26 @@ def build_parser():
     m.add_argument("--plot", metavar="DIR", help="write PNG plots here (plot extra)")
     m.add_argument("--json", metavar="FILE")
     m.set_defaults(func=cmd_measure)
+
+    pk = sub.add_parser("port-kit", help="golden vectors and a C reference for a port",
+                        description="Write a folder a port can be tested against: the test "
+                                    "programme (main and key), the output and every stage's "
+                                    "trace as raw float32 at two block sizes, a manifest, and "
+                                    "a standalone C reference with a runner that compares "
+                                    "itself (or your port) with the vectors.")
+    _add_setup(pk)
+    pk.add_argument("--out", required=True, metavar="DIR",
+                    help="folder to write (new, or empty)")
+    pk.add_argument("--samplerate", type=float, default=48000.0,
+                    help="Hz (default 48000)")
+    pk.add_argument("--channels", type=int, default=2, choices=range(1, 9), metavar="N",
+                    help="main channels, 1 to 8 (default 2)")
+    pk.add_argument("--blocksize", type=int, action="append", metavar="N",
+                    help="give twice: the two block sizes (default 64 and 1000 frames)")
+    pk.add_argument("--wav", action="append", metavar="FILE.wav",
+                    help="also run this file after the test programme (same rate; mono or "
+                         "the kit's channels; its first channel keys), repeatable")
+    pk.set_defaults(func=cmd_port_kit)
 
     d = sub.add_parser("demo", help="the rehearsal demo: live ducking, then offline renders",
                        description="The built-in rehearsal scenario (drum loop, music bed, "
