@@ -72,6 +72,42 @@ def limiter_detected_db(proc, x):
     return _db(peak)
 
 
+def _cookbook(kind, f0, q, fs):
+    """(b, a) of an Audio EQ Cookbook biquad (R. Bristow-Johnson): low-pass, high-pass, or the
+    constant 0 dB peak band-pass, written here from the cookbook for the curve theory."""
+    w0 = 2 * math.pi * f0 / fs
+    cw, alpha = math.cos(w0), math.sin(w0) / (2 * q)
+    if kind == "lowpass":
+        b = [(1 - cw) / 2, 1 - cw, (1 - cw) / 2]
+    elif kind == "highpass":
+        b = [(1 + cw) / 2, -(1 + cw), (1 + cw) / 2]
+    else:
+        b = [alpha, 0.0, -alpha]
+    return np.array(b), np.array([1 + alpha, -2 * cw, 1 - alpha])
+
+
+def rms_detected_db(proc, key):
+    """The rms detector's steady reading of ``key`` (frames,), dB, sine-referenced
+    (10 log10 of twice the mean square over the last 0.1 s), after the key filters the
+    processor has on; None when the detector is not the built-in rms one."""
+    v = proc.values()
+    if proc.algorithm.kind != "dynamics" or int(v.get("detector", 0)) != 1 or \
+            getattr(proc.algorithm, "user_detector", None) is not None:
+        return None
+    from scipy.signal import lfilter
+
+    fs = proc.samplerate
+    k = np.asarray(key, dtype=np.float64).ravel()
+    q_bw = 1 / math.sqrt(2)
+    for name, kind, q in (("key_hpf", "highpass", q_bw), ("key_lpf", "lowpass", q_bw),
+                          ("key_bpf", "bandpass", v.get("key_q", 1.0))):
+        if v.get(name, 0.0) > 0.0:
+            b, a = _cookbook(kind, v[name], q, fs)
+            k = lfilter(b, a, k)
+    tail = k[-int(0.1 * fs):]
+    return 10 * math.log10(max(2 * float(np.mean(tail ** 2)), 1e-30))
+
+
 def _feedback_output_db(level_db, thr, slope, knee):
     """Steady output y of the feedback compressor: the root of y = x + g(y), with g the curve on
     the output level of slope s / (1 - s) (livedyn.dsp.dynamics.feedback_slope); y - g(y) rises
@@ -91,8 +127,8 @@ def theory_output_db(proc, level_db, signal=None, detected_db=None):
     """The output level the static curve predicts for a steady input (or key) level.
 
     ``signal`` ("square" or "sine") lets the theory follow the detector's reading of that test
-    signal (:func:`detected_offset_db`); ``detected_db`` is the limiter's detector reading
-    (:func:`limiter_detected_db`), by default the level itself. In feedback topology the
+    signal (:func:`detected_offset_db`); ``detected_db`` is the detector's reading itself when
+    known (:func:`limiter_detected_db`, :func:`rms_detected_db`), by default the level. In feedback topology the
     output solves y = x + g(y) (see :func:`_feedback_output_db`).
     """
     v = proc.values()
@@ -105,7 +141,10 @@ def theory_output_db(proc, level_db, signal=None, detected_db=None):
     slope = ratio_to_slope(v.get("ratio", 1.0))
     thr, knee = v.get("threshold", 0.0), v.get("knee", 0.0)
     makeup = v.get("makeup", 0.0)
-    det_db = level_db + (detected_offset_db(proc, signal) if signal else 0.0)
+    if detected_db is not None:
+        det_db = detected_db
+    else:
+        det_db = level_db + (detected_offset_db(proc, signal) if signal else 0.0)
     if law == LAW_COMPRESSOR and int(v.get("topology", 0)) == 1:
         # the detector reads the output; its rms reading of a square is again 3.01 dB high
         off = det_db - level_db
@@ -186,6 +225,9 @@ def static_curve(make, levels_db=None, signals=("square", "sine")):
             det = None
             if proc.algorithm.kind == "limiter":
                 det = limiter_detected_db(proc, x[:, 0])
+            elif int(proc.values().get("topology", 0)) != 1:
+                keyed = proc.algorithm.law == LAW_DUCKER and proc.key_channels
+                det = rms_detected_db(proc, (key if keyed else x)[:, 0])
             rows.append(CurveRow(float(lv), signal, measured,
                                  theory_output_db(proc, float(lv), signal, det)))
     return rows
