@@ -63,6 +63,27 @@ def test_vectors_and_manifest(tmp_path):
     assert json.loads((kit / "manifest.json").read_text())["c_stages"] == "built-in stages only"
 
 
+def test_user_wav_is_appended_to_the_programme(tmp_path):
+    import soundfile as sf
+
+    tone = (0.25 * np.sin(2 * np.pi * 440 * np.arange(4800) / 48000)).astype(np.float32)
+    sf.write(str(tmp_path / "mine.wav"), tone, 48000, subtype="FLOAT")
+    kit = tmp_path / "kit"
+    m = write_kit(kit, Setup(algorithm="ducker"), wavs=[tmp_path / "mine.wav"],
+                  blocksizes=(32, 500))
+    part = m["programme"][-1]
+    assert part["name"] == "mine.wav" and part["frames"] == 4800
+    assert m["block_sizes"] == [32, 500] and m["key_channels"] == 1
+    main = np.fromfile(kit / "block-32" / "main.f32", "<f4").reshape(-1, 2)
+    key = np.fromfile(kit / "block-32" / "key.f32", "<f4")
+    np.testing.assert_array_equal(main[part["start"]:, 0], tone)  # mono spread to both
+    np.testing.assert_array_equal(main[part["start"]:, 1], tone)
+    np.testing.assert_array_equal(key[part["start"]:], tone)  # its first channel keys
+    with pytest.raises(KitError, match="44100 Hz, expected 48000 Hz"):
+        sf.write(str(tmp_path / "other.wav"), tone, 44100, subtype="FLOAT")
+        write_kit(tmp_path / "kit2", Setup(), wavs=[tmp_path / "other.wav"])
+
+
 @needs_cc
 @pytest.mark.parametrize("setup", [Setup(algorithm="compressor"),
                                    Setup(preset="drums-ceiling"),
