@@ -160,7 +160,10 @@ def theory_output_db(proc, level_db, signal=None, detected_db=None):
         if v.get("automakeup", 0) > 0.5:
             g -= stages.compressor_gain(0.0, thr, slope, knee)
     elif law == LAW_EXPANDER:
-        g = stages.expander_gain(level_db, thr, slope, knee, v["range"])
+        # a steady level at or above threshold opens the expander, whose threshold then drops
+        # by the hysteresis; below it, a sweep point that starts closed stays closed
+        t_eff = thr - v.get("hysteresis", 0.0) if level_db >= thr else thr
+        g = stages.expander_gain(level_db, t_eff, slope, knee, v["range"])
     elif law == LAW_GATE:
         g = 0.0 if level_db >= thr else -v["range"]
     elif law == LAW_USER:
