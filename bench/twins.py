@@ -37,7 +37,7 @@ from livedyn.params import (
     P_ATTACK, P_AUTOMAKEUP, P_BALLISTICS, P_CEILING, P_DETECTOR, P_DOMAIN, P_HOLD, P_HYSTERESIS,
     P_KEY, P_KEY_BPF, P_KEY_HPF, P_KEY_LPF, P_KEY_Q, P_KNEE, P_LAW, P_LINK, P_LOOKAHEAD, P_MAKEUP,
     P_MIX, P_RANGE, P_RATIO, P_RELEASE, P_RMS_TIME, P_SAMPLERATE, P_THRESHOLD, P_TOPOLOGY,
-    P_TRUE_PEAK, TOPOLOGY_FEEDBACK,
+    P_START, P_TRUE_PEAK, START_CLOSED, TOPOLOGY_FEEDBACK, FEEDBACK_MAX_RATIO,
 )
 
 __all__ = ["dynamics_twin", "limiter_twin", "twin_for"]
@@ -249,6 +249,8 @@ def dynamics_twin(x, key, out, p, st, ring, tr):
     if st[L.S_READY, 0] == 0.0:
         for row, t in zip(_GLIDED, targets):
             st[row, 0] = t
+        if law in (LAW_EXPANDER, LAW_GATE) and p[P_START] == START_CLOSED:
+            st[L.R_Y, :] = -targets[4]  # closed: at the full range
         st[L.S_READY, 0] = 1.0
     cur = [float(st[row, 0]) for row in _GLIDED]
     thr, slope, knee, mk, rng, mix, ceil, hyst = cur
@@ -274,6 +276,8 @@ def dynamics_twin(x, key, out, p, st, ring, tr):
             if automakeup:
                 mk_auto = -compressor_curve(0.0, thr, slope, knee)
             gliding = cur != targets
+        # feedback: the curve on the output level has the slope R - 1 (so the set ratio holds)
+        s_fb = slope / (1.0 - slope) if slope < 1.0 else FEEDBACK_MAX_RATIO - 1.0
 
         # main input into the delay line
         for c in range(ch):
@@ -355,7 +359,7 @@ def dynamics_twin(x, key, out, p, st, ring, tr):
                 x_db = to_db(lv)
 
             if law == LAW_COMPRESSOR:
-                gc = compressor_curve(x_db, thr, slope, knee)
+                gc = compressor_curve(x_db, thr, s_fb if feedback else slope, knee)
             elif law == LAW_DUCKER:
                 gc = max(compressor_curve(x_db, thr, slope, knee), -rng)
             else:
@@ -654,7 +658,7 @@ def limiter_twin(x, key, out, p, st, ring, tr):
                 st[L.R_HOLD, g] -= 1.0
                 gn = gp
             else:
-                gn = min(a_rel * gp + (1.0 - a_rel) * b, b)
+                gn = min(math.exp(a_rel * math.log(gp) + (1.0 - a_rel) * math.log(b)), b)  # in dB
             # last clamp: the requirement of the sample leaving (both taps while crossfading)
             lim = _requirement(ring, ch, _back(w - d_cur, n_ring), g, ngain)
             if xf > 0.0:

@@ -77,7 +77,7 @@ def cmd_render(args):
     summary = render(args.input, args.out, _setup_from(args), key_path=args.key,
                      automation_path=args.automation, trace_dir=args.trace,
                      blocksize=args.blocksize, keep_latency=args.keep_latency,
-                     subtype=args.format)
+                     subtype=args.format, layout=args.layout)
     for line in summary.lines():
         print(line)
     if args.trace:
@@ -109,8 +109,14 @@ def cmd_measure(args):
         _check_target(args.json, "--json")
     make = _factory(args)
     proc = make()
+    import textwrap
+
+    settings = ", ".join(f"{k} {v}" for k, v in proc.describe().items())
     title = f"{proc.algorithm.name} at {args.samplerate:g} Hz"
-    print(title + ": " + ", ".join(f"{k} {v}" for k, v in proc.describe().items()))
+    print(title + ": " + settings)
+    # plot titles carry the settings, wrapped to the figure's width
+    title = "\n".join(textwrap.wrap(f"{title}: {settings}", 95))
+    keyed = proc.algorithm.needs_key and proc.algorithm.kind == "dynamics"
     want_plot = args.plot is not None
     if want_plot and not analysis.have_matplotlib():
         print("(no plots: install the plot extra, pip install 'livedyn[plot]')")
@@ -121,8 +127,7 @@ def cmd_measure(args):
     if args.what == "curve":
         signals = ("square", "sine") if args.signal == "both" else (args.signal,)
         rows = analysis.static_curve(make, signals=signals)
-        what = "key level" if proc.algorithm.law == 3 and proc.algorithm.kind == "dynamics" \
-            else "input"
+        what = "key level" if keyed else "input"
         print(f"{what + ', dBFS':>16}{'signal':>8}{'output, dBFS':>14}{'theory':>9}{'error, dB':>11}")
         for r in rows:
             print(f"{r.level_db:16.1f}{r.signal:>8}{r.measured_db:14.2f}{r.theory_db:9.2f}"
@@ -133,24 +138,53 @@ def cmd_measure(args):
                   "the main input here)")
         elif sq:
             print(f"largest square-wave error: {max(sq):.3f} dB")
+        vals = proc.values()
+        if int(vals.get("detector", 0)) == 1 and proc.algorithm.kind == "dynamics":
+            print("(rms detector: it is sine-referenced, so a square reads 3.01 dB above its "
+                  "peak; the theory uses that reading)")
+        if int(vals.get("topology", 0)) == 1 and proc.algorithm.law == 0:
+            print("(feedback: the theory is the output y solving y = x + g(y), with the curve "
+                  "on the output level at slope ratio - 1)")
+        if vals.get("true_peak", 0) > 0.5 and proc.algorithm.kind == "limiter":
+            print("(true peak: the theory uses the 4x interpolated peak of the test signal, "
+                  "which for a square lies above its sample peak)")
         result["curve"] = [r.__dict__ for r in rows]
         if want_plot:
             path = Path(args.plot) / "curve.png"
-            analysis.plot("curve", rows, path, title)
+            analysis.plot("curve", rows, path, title,
+                          x_label=("key level, dBFS" if keyed else "input level, dBFS"))
             print(f"plot: {path}")
     elif args.what == "timing":
         rows = analysis.timing(make)
-        print(f"{'phase':>8}{'setting, ms':>13}{'tau (63 %), ms':>16}{'10-90 %, ms':>13}")
+        print(f"{'phase':>8}{'setting, ms':>13}{'hold, ms':>10}{'tau (63 %), ms':>16}"
+              f"{'ramp, ms':>10}{'10-90 %, ms':>13}  law")
         for r in rows:
-            print(f"{r.phase:>8}{r.setting_ms:13.2f}{r.tau_ms:16.2f}{r.rise_10_90_ms:13.2f}")
-        print("(tau is the documented meaning of attack and release; 10-90 % = 2.197 tau for a "
-              "one-pole)")
-        result["timing"] = [r.__dict__ for r in rows]
+            tau = "" if r.law == "linear ramp" else f"{r.tau_ms:.2f}"
+            ramp = f"{r.ramp_ms:.2f}" if r.law == "linear ramp" else ""
+            print(f"{r.phase:>8}{r.setting_ms:13.2f}{r.hold_ms:10.2f}{tau:>16}{ramp:>10}"
+                  f"{r.rise_10_90_ms:13.2f}  {r.law}")
+        if proc.algorithm.kind == "limiter":
+            print("(the limiter's attack is a straight ramp of the linear gain over attack ms "
+                  "(plus one sample), starting when a peak enters the lookahead; its release "
+                  "is a one-pole of tau release in dB, after the lookahead's hold)")
+        else:
+            print("(tau, counted from the first movement after the hold, is the documented "
+                  "meaning of attack and release; 10-90 % = 2.197 tau for a one-pole)")
+        result["timing"] = [r.as_dict() for r in rows]
+        if want_plot:
+            path = Path(args.plot) / "timing.png"
+            analysis.plot("timing", rows, path, title)
+            print(f"plot: {path}")
     elif args.what == "latency":
         measured, reported = analysis.latency(make)
         print(f"latency: measured {measured} samples from an impulse, reported {reported} "
               f"samples ({1000 * reported / args.samplerate:.3f} ms)")
         result["latency"] = {"measured": measured, "reported": reported}
+        if want_plot:
+            x, y = analysis.impulse_response(make)
+            path = Path(args.plot) / "latency.png"
+            analysis.plot("latency", (x, y, args.samplerate), path, title)
+            print(f"plot: {path}")
     elif args.what == "distortion":
         rows = analysis.distortion(make, freq=args.frequency)
         if not rows:
@@ -194,6 +228,27 @@ def cmd_ready(args):
             write_text_atomic(args.json, readiness.to_json(rep))
             print(f"report written to {args.json}")
     return 1 if rep["verdict"] == readiness.FAIL else 0
+def cmd_port_kit(args):
+    from .port.kit import write_kit
+
+    blocks = [int(b) for b in (args.blocksize or [])] or None
+    if blocks is not None and len(blocks) != 2:
+        raise CliError(f"--blocksize given {len(blocks)} times: expected twice (two block "
+                       "sizes) or not at all (64 and 1000)")
+    for w in args.wav or []:
+        if Path(w).resolve().is_relative_to(Path(args.out).resolve()):
+            raise CliError(f"--wav {w}: lies inside --out {args.out}; choose another folder")
+    kw = {} if blocks is None else {"blocksizes": blocks}
+    m = write_kit(args.out, _setup_from(args), samplerate=args.samplerate,
+                  channels=args.channels, wavs=args.wav or (), **kw)
+    print(f"{m['algorithm']}: port kit in {args.out}/ ({m['frames']} frames at "
+          f"{m['samplerate']:g} Hz, {m['channels']} ch, key {m['key_channels']} ch, block sizes "
+          f"{' and '.join(str(b) for b in m['block_sizes'])}, latency {m['latency_samples']} "
+          f"samples)")
+    print(f"  C reference: {m['c_stages']}")
+    print(f"  build and check: make -C {args.out}/c check   (bit for bit: make -C {args.out}/c "
+          "exact)")
+    return 0
 
 
 def cmd_presets(args):
@@ -671,6 +726,9 @@ def build_parser():
     r.add_argument("--format", choices=["PCM_16", "PCM_24", "PCM_32", "FLOAT"],
                    help="output sample format (default: as the input)")
     r.add_argument("--summary-json", metavar="FILE")
+    r.add_argument("--layout", choices=["mono", "stereo", "5.0", "5.1", "7.1"],
+                   help="channel layout of the loudness figures (BS.1770-4 channel weights: LFE "
+                        "left out, surrounds +1.5 dB); default: from the channel count")
     r.set_defaults(func=cmd_render)
 
     m = sub.add_parser("measure", help="measure a processor: curve, timing, latency, distortion",
@@ -684,6 +742,26 @@ def build_parser():
     m.add_argument("--plot", metavar="DIR", help="write PNG plots here (plot extra)")
     m.add_argument("--json", metavar="FILE")
     m.set_defaults(func=cmd_measure)
+
+    pk = sub.add_parser("port-kit", help="golden vectors and a C reference for a port",
+                        description="Write a folder a port can be tested against: the test "
+                                    "programme (main and key), the output and every stage's "
+                                    "trace as raw float32 at two block sizes, a manifest, and "
+                                    "a standalone C reference with a runner that compares "
+                                    "itself (or your port) with the vectors.")
+    _add_setup(pk)
+    pk.add_argument("--out", required=True, metavar="DIR",
+                    help="folder to write (new, or empty)")
+    pk.add_argument("--samplerate", type=float, default=48000.0,
+                    help="Hz (default 48000)")
+    pk.add_argument("--channels", type=int, default=2, choices=range(1, 9), metavar="N",
+                    help="main channels, 1 to 8 (default 2)")
+    pk.add_argument("--blocksize", type=int, action="append", metavar="N",
+                    help="give twice: the two block sizes (default 64 and 1000 frames)")
+    pk.add_argument("--wav", action="append", metavar="FILE.wav",
+                    help="also run this file after the test programme (same rate; mono or "
+                         "the kit's channels; its first channel keys), repeatable")
+    pk.set_defaults(func=cmd_port_kit)
 
     d = sub.add_parser("demo", help="the rehearsal demo: live ducking, then offline renders",
                        description="The built-in rehearsal scenario (drum loop, music bed, "

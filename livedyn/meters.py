@@ -27,7 +27,7 @@ import numpy as np
 from .dsp import levels as _lv
 from .dsp import loudness as _ld
 from .dsp import truepeak as _tp
-from .params import LEVEL_FLOOR_DB
+from .params import LEVEL_FLOOR_DB, ParamError
 
 __all__ = [
     "LoudnessMeter",
@@ -303,10 +303,19 @@ class MeterSet:
         Channel count.
     rms_tau_ms : float
         RMS time constant of the level meter, ms.
+    layout : str, optional
+        Channel layout for the loudness weights (``livedyn.dsp.loudness.LAYOUTS``: mono,
+        stereo, 5.0, 5.1, 7.1); by default the channel count decides.
     """
 
-    def __init__(self, samplerate, channels, rms_tau_ms=125.0):
-        self.loudness = LoudnessMeter(samplerate, channels)
+    def __init__(self, samplerate, channels, rms_tau_ms=125.0, layout=None):
+        weights = None
+        if layout is not None:
+            try:
+                weights = _ld.default_weights(channels, layout)
+            except ValueError as e:
+                raise ParamError(str(e)) from None
+        self.loudness = LoudnessMeter(samplerate, channels, weights)
         self.true_peak = TruePeakMeter(samplerate, channels)
         self.levels = LevelMeter(samplerate, channels, rms_tau_ms=rms_tau_ms)
         self.samplerate = self.loudness.samplerate

@@ -53,6 +53,7 @@ P_LAW = 27  # gain law of the dynamics kernel, written by the Processor
 P_USER_CURVE = 28  # address of a user gain curve (a compiled cfunc), written by the Processor
 P_USER_DETECTOR = 29  # address of a user level detector (0: the built-in peak/rms measure)
 P_USER_SMOOTHER = 30  # address of a user gain smoother (0: the built-in ballistics)
+P_START = 31  # expander and gate: the state before the first sample (closed or open)
 USER_SLOT0 = 32  # the parameters a user algorithm declares itself live in slots 32..63
 NPARAM = 64
 
@@ -70,6 +71,8 @@ LINK_MEAN = 1
 LINK_NONE = 2
 KEY_MAIN = 0
 KEY_EXTERNAL = 1
+START_CLOSED = 0
+START_OPEN = 1
 # Gain laws of the dynamics kernel (slot P_LAW).
 LAW_COMPRESSOR = 0
 LAW_EXPANDER = 1
@@ -77,6 +80,9 @@ LAW_GATE = 2
 LAW_DUCKER = 3
 LAW_USER = 4  # a user-written gain curve, called through P_USER_CURVE
 
+# Largest ratio the feedback topology reaches: its curve on the output level needs the slope
+# R - 1 (livedyn.dsp.dynamics.feedback_slope), which grows without bound as R does.
+FEEDBACK_MAX_RATIO = 20.0
 # Glide time constant of "sample"-updated parameters, ms (a choice of ours: fast enough to feel
 # immediate, slow enough that a 20 dB threshold jump makes no audible click).
 GLIDE_MS = 10.0
@@ -286,7 +292,8 @@ ALL = {
            "detector placement: feedforward (before the gain stage) or feedback (after it)",
            choices=("feedforward", "feedback")),
         _p("link", P_LINK, "", 0, 2, LINK_MAX, "choice", "block",
-           "how channels share gain: max (linked maximum), mean (linked mean) or none",
+           "how channels share gain: max (the largest detector level), mean (the average of "
+           "the channels' linear detector levels: |k|, or the mean square for rms) or none",
            choices=("max", "mean", "none")),
         _p("key", P_KEY, "", 0, 1, KEY_MAIN, "choice", "block",
            "what drives the detector: the main input or the external key input",
@@ -296,8 +303,37 @@ ALL = {
         _p("true_peak", P_TRUE_PEAK, "", 0, 1, 0, "choice", "block",
            "limit inter-sample (4x oversampled, BS.1770-4 Annex 2) peaks too",
            choices=("off", "on")),
+        _p("start", P_START, "", 0, 1, START_CLOSED, "choice", "block",
+           "expander and gate: state before the first sample; closed (as after silence, so the "
+           "first sound opens it with the attack time) or open", choices=("closed", "open")),
     ]
 }
+
+
+def feedback_problem(ratio, attack_ms, release_ms, samplerate):
+    """None when the feedback topology can hold this ratio, else a one-line reason.
+
+    Reachable: 1 <= ratio <= FEEDBACK_MAX_RATIO. The loop must also settle. Linearised above
+    the threshold, a one-pole of coefficient a on the gain in dB makes the loop
+    G[n] = (a - (1 - a)(R - 1)) G[n-1] + ..., since the detector reads the previous output
+    sample; it converges when (R - 1)(1 - a) < 1 + a, i.e. tau > -1 / (fs ln((R - 2) / R)).
+    The branching detector switches between the attack and the release one-pole, and one of
+    them settling is enough (measured here at 8 kHz, ratio 20: attack 0 with release 1 ms rings
+    by 32 dB; attack 0 with release 100 ms, or attack 50 ms with release 1 ms, settles on the
+    set curve), so the pair is refused only when neither would settle alone.
+    """
+    if not (ratio <= FEEDBACK_MAX_RATIO):
+        return (f"ratio = {format_number(ratio)} with topology = feedback: the feedback law "
+                f"reaches ratios 1 to {format_number(FEEDBACK_MAX_RATIO)}")
+    if ratio <= 2.0:
+        return None
+    need = -1000.0 / (samplerate * math.log((ratio - 2.0) / ratio))
+    if attack_ms <= need and release_ms <= need:
+        return (f"attack = {format_number(attack_ms)} ms and release = "
+                f"{format_number(release_ms)} ms with topology = feedback and ratio "
+                f"{format_number(ratio)}: the loop rings, expected attack or release above "
+                f"{need:.3g} ms at {samplerate:g} Hz")
+    return None
 
 
 def ratio_to_slope(ratio: float) -> float:

@@ -13,9 +13,10 @@ import numpy as np
 from . import algorithms
 from .dsp import layout as L
 from .params import (
-    ALL, KEY_EXTERNAL, LINK_MEAN, LINK_NONE, MAX_LOOKAHEAD_MS, NPARAM, P_KEY, P_LAW, P_LINK,
+    ALL, KEY_EXTERNAL, LAW_COMPRESSOR, LINK_MEAN, LINK_NONE, MAX_LOOKAHEAD_MS, NPARAM, P_KEY, P_LAW, P_LINK,
     P_LOOKAHEAD, P_SAMPLERATE, P_TOPOLOGY, P_TRUE_PEAK, P_USER_CURVE, P_USER_DETECTOR,
-    P_USER_SMOOTHER, TOPOLOGY_FEEDBACK, ParamError,
+    P_ATTACK, P_RATIO, P_RELEASE,
+    P_USER_SMOOTHER, TOPOLOGY_FEEDBACK, ParamError, feedback_problem,
 )
 
 MAX_CHANNELS = 8
@@ -133,6 +134,11 @@ class Processor:
             if "topology" in self.schema and int(p[P_TOPOLOGY]) == TOPOLOGY_FEEDBACK:
                 raise ParamError("topology = feedback: the detector reads the output, so the key "
                                  "must be main")
+        if ("topology" in self.schema and int(p[P_TOPOLOGY]) == TOPOLOGY_FEEDBACK
+                and self.algorithm.law == LAW_COMPRESSOR and self.algorithm.kind == "dynamics"):
+            problem = feedback_problem(p[P_RATIO], p[P_ATTACK], p[P_RELEASE], self.samplerate)
+            if problem:
+                raise ParamError(problem)
         if self.algorithm.kind == "limiter" and int(p[P_LINK]) == LINK_MEAN:
             raise ParamError("link = mean: the limiter's ceiling needs max or none")
 

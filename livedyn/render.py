@@ -126,6 +126,7 @@ class Summary:
     seconds: float
     automation_events: int = 0
     parameters: dict = field(default_factory=dict)
+    notes: list = field(default_factory=list)  # one line each: how the key was adapted
 
     def as_dict(self):
         return dict(self.__dict__)
@@ -160,6 +161,69 @@ class Summary:
               f"({1000 * self.latency_samples / self.samplerate:.2f} ms, {comp})"
         if self.nonfinite_inputs:
             yield f"  {self.nonfinite_inputs} non-finite input samples were replaced by 0"
+        for note in self.notes:
+            yield f"  note: {note}"
+
+
+class _KeyAlongside:
+    """A key file made to run alongside the main input: resampled to the main rate with
+    ``scipy.signal.resample_poly`` when its rate differs (then held in memory, as the
+    polyphase filter needs the whole signal), padded with silence or trimmed to the main
+    input's length. ``notes`` says what was done, one line each."""
+
+    def __init__(self, reader, key_path, fs, frames):
+        self.channels = reader.channels
+        self.samplerate = fs
+        self.frames = frames
+        self.notes = []
+        self._reader = reader
+        self._data = None
+        kfs, kframes = reader.samplerate, reader.frames
+        if kfs != fs:
+            from fractions import Fraction
+
+            from scipy.signal import resample_poly
+
+            ratio = Fraction(int(round(fs)), int(round(kfs))).limit_denominator(10000)
+            data = reader.read().astype(np.float64)
+            self._data = np.ascontiguousarray(
+                resample_poly(data, ratio.numerator, ratio.denominator, axis=0),
+                dtype=np.float32)
+            self.notes.append(f"key {Path(key_path).name}: {kfs:g} Hz resampled to {fs:g} Hz "
+                              f"(scipy.signal.resample_poly, up {ratio.numerator}, down "
+                              f"{ratio.denominator})")
+            kframes = self._data.shape[0]
+        if kframes < frames:
+            self.notes.append(f"key {Path(key_path).name}: {kframes} frames, padded with "
+                              f"{frames - kframes} frames of silence to the input's {frames}")
+        elif kframes > frames:
+            self.notes.append(f"key {Path(key_path).name}: {kframes} frames, its last "
+                              f"{kframes - frames} trimmed to the input's {frames}")
+
+    def blocks(self, n):
+        """Blocks of the main input's sizes (``n`` frames, the last one shorter)."""
+        src = iter(()) if self._data is not None else self._reader.blocks(n)
+        pos = 0
+        held = np.zeros((0, self.channels), np.float32)
+        while pos < self.frames:
+            want = min(n, self.frames - pos)
+            if self._data is not None:
+                block = self._data[pos:pos + want]
+            else:
+                while held.shape[0] < want:
+                    more = next(src, None)
+                    if more is None:
+                        break
+                    held = np.concatenate([held, more]) if held.shape[0] else more
+                block, held = held[:want], held[want:]
+            if block.shape[0] < want:
+                block = np.concatenate(
+                    [block, np.zeros((want - block.shape[0], self.channels), np.float32)])
+            pos += want
+            yield np.ascontiguousarray(block)
+
+    def close(self):
+        self._reader.close()
 
 
 class _Progress:
@@ -224,7 +288,7 @@ class _TraceWriter:
 
 def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None, trace_dir=None,
            blocksize=DEFAULT_BLOCKSIZE, keep_latency=False, subtype=None,
-           progress_min_seconds=30.0, safety_ceiling_db=None) -> Summary:
+           progress_min_seconds=30.0, safety_ceiling_db=None, layout=None) -> Summary:
     """Render ``in_path`` through the configured processor into ``out_path``.
 
     Raises RenderError / ParamError / WavError with a one-line message; on any error the output
@@ -233,6 +297,9 @@ def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None,
     ``safety_ceiling_db`` applies the live engine's last stage (non-finite samples mute their
     block, then the ceiling) to every block, so that a live recording can be compared with a
     render sample for sample.
+
+    ``layout`` names the channel layout of the loudness figures (BS.1770-4 channel weights,
+    ``livedyn.dsp.loudness.LAYOUTS``); by default the channel count decides.
     """
     if isinstance(blocksize, bool) or int(blocksize) != blocksize or not 1 <= blocksize <= 65536:
         raise RenderError(f"--blocksize {blocksize!r}: expected a whole number from 1 to 65536")
@@ -253,16 +320,15 @@ def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None,
         fs, ch, frames = src.samplerate, src.channels, src.frames
         key = None
         kch = 0
+        notes = []
         if key_path is not None:
-            key = WavReader(key_path)
-            if key.samplerate != fs:
-                key.close()
-                raise RenderError(f"{key_path}: {key.samplerate} Hz, expected {fs} Hz like "
-                                  f"{in_path}")
-            if key.frames != frames:
-                key.close()
-                raise RenderError(f"{key_path}: {key.frames} frames, expected {frames} like "
-                                  f"{in_path} (the key must run alongside the input)")
+            reader = WavReader(key_path)
+            try:
+                key = _KeyAlongside(reader, key_path, fs, frames)
+            except BaseException:
+                reader.close()
+                raise
+            notes = key.notes
             kch = key.channels
         try:
             proc = build_processor(setup, fs, ch, kch, strict_key=True)
@@ -272,9 +338,11 @@ def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None,
                 if auto.samplerate != fs:
                     raise RenderError(f"{automation_path}: recorded at {auto.samplerate:g} Hz, "
                                       f"expected {fs} Hz like {in_path}")
-            return _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize,
-                        keep_latency, subtype or _output_subtype(src.subtype), t0,
-                        progress_min_seconds, safety_ceiling_db)
+            summary = _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize,
+                           keep_latency, subtype or _output_subtype(src.subtype), t0,
+                           progress_min_seconds, safety_ceiling_db, layout)
+            summary.notes = list(notes)
+            return summary
         finally:
             if key is not None:
                 key.close()
@@ -285,12 +353,12 @@ def _output_subtype(in_subtype):
 
 
 def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_latency, subtype,
-         t0, progress_min_seconds, safety_ceiling_db=None):
+         t0, progress_min_seconds, safety_ceiling_db=None, layout=None):
     fs, ch, frames = src.samplerate, src.channels, src.frames
     kch = key.channels if key is not None else 0
     lat = 0 if keep_latency else proc.latency_samples
-    meters_in = MeterSet(fs, ch)
-    meters_out = MeterSet(fs, ch)
+    meters_in = MeterSet(fs, ch, layout=layout)
+    meters_out = MeterSet(fs, ch, layout=layout)
     cursor = AutomationCursor(auto)
     tracer = _TraceWriter(Path(trace_dir), fs, proc, kch) if trace_dir else None
     prog = _Progress(frames, f"rendering {Path(in_path).name}", progress_min_seconds * fs)

@@ -69,3 +69,27 @@ def square(fs, amp, frames, period=96, channels=1):
 
 def db(x):
     return 20 * np.log10(np.maximum(np.abs(x), 1e-300))
+
+
+def one_pole_db_step(g0_db, g1_db, tau_ms, fs, n):
+    """A one-pole of time constant tau on a value in dB, from g0 toward g1 ([GMR2012] eq. (9)
+    for the coefficient; the README's definition of release): g[k] = g1 + (g0 - g1) a^k."""
+    a = gmr_alpha(tau_ms / 1000.0, fs)
+    return g1_db + (g0_db - g1_db) * a ** np.arange(1, n + 1)
+
+
+def linear_ramp_gain(r, steps, n):
+    """A straight line of the linear gain from 1 down to r reached after ``steps`` samples,
+    then held (the limiter's attack as the README defines it): 1 - (1 - r) min(k, steps)/steps
+    for k = 1..n."""
+    k = np.minimum(np.arange(1, n + 1), steps)
+    return 1.0 - (1.0 - r) * k / steps
+
+
+def expander_with_hysteresis_gain(x_db, T, R, hyst, range_db, was_open):
+    """Hard-knee downward expander whose threshold drops to T - hyst while open (common
+    practice, no source): the state after this sample and its gain in dB."""
+    is_open = True if x_db >= T else (False if x_db < T - hyst else was_open)
+    t_eff = T - hyst if is_open else T
+    g = (R - 1.0) * min(x_db - t_eff, 0.0)
+    return is_open, max(g, -range_db)

@@ -104,10 +104,7 @@ BAD = {
     "text file named .wav": ["render", "{d}/text.wav"],
     "AIFF": ["render", "{d}/in.aiff"],
     "9 channels": ["render", "{d}/nine.wav"],
-    "key at another rate": ["render", "{d}/in.wav", "--algorithm", "ducker",
-                            "--key", "{d}/key44.wav"],
-    "key of another length": ["render", "{d}/in.wav", "--algorithm", "ducker",
-                              "--key", "{d}/key_short.wav"],
+    "layout that does not fit": ["render", "{d}/in.wav", "--layout", "5.1"],
     "unknown algorithm": ["render", "{d}/in.wav", "--algorithm", "exciter"],
     "unknown parameter": ["render", "{d}/in.wav", "--set", "loudness=3"],
     "out of range": ["render", "{d}/in.wav", "--set", "ratio=0.5"],
@@ -131,8 +128,8 @@ BAD = {
 }
 EXPECT = {  # a word the message must contain, so that it names what went wrong
     "missing input": "nope.wav", "directory as input": "directory", "text file named .wav":
-    "text.wav", "AIFF": "AIFF", "9 channels": "9 channels", "key at another rate": "44100",
-    "key of another length": "4000", "unknown algorithm": "exciter", "unknown parameter":
+    "text.wav", "AIFF": "AIFF", "9 channels": "9 channels", "layout that does not fit": "5.1",
+    "unknown algorithm": "exciter", "unknown parameter":
     "loudness", "out of range": "ratio", "no '='": "name=value", "preset syntax error":
     "syntax.toml:2", "preset unknown key": "loudness", "no such preset": "no-such-preset",
     "automation bad line": "bad.auto:3", "automation other rate": "44100", "blocksize 0":
@@ -288,13 +285,14 @@ def test_measure_timing(capsys):
     assert rc == 0 and err == ""
     rows = {}
     for ln in out.splitlines():
-        m = re.fullmatch(rf"\s*(attack|release)\s+({_NUM})\s+({_NUM})\s+({_NUM})\s*", ln)
+        m = re.fullmatch(rf"\s*(attack|release)\s+({_NUM})\s+({_NUM})\s+({_NUM})\s+({_NUM})"
+                         r"\s+one-pole\s*", ln)
         if m:
             rows[m.group(1)] = tuple(float(g) for g in m.groups()[1:])
     assert set(rows) == {"attack", "release"}
     for phase, setting in (("attack", 10.0), ("release", 150.0)):
-        s, tau, rise = rows[phase]
-        assert s == setting
+        s, hold, tau, rise = rows[phase]
+        assert s == setting and hold == 0.0
         # attack/release are one-pole tau: 63.2 % at tau, 10-90 % = tau ln 9
         assert tau == pytest.approx(setting, rel=0.02)
         assert rise == pytest.approx(tau * math.log(9), rel=0.02)
@@ -369,3 +367,21 @@ def test_demo(tmp_path, capsys):
     # the ceiling preset holds its -4 dBFS sample ceiling
     y, _ = sf.read(str(out_dir / "drums-ceiling.wav"), dtype="float32")
     assert np.abs(y).max() <= 10 ** (-4 / 20) * (1 + 1e-6)
+
+
+@pytest.mark.parametrize("key, word", [("key44.wav", "resampled"), ("key_short.wav", "padded")])
+def test_render_adapts_a_key_of_another_rate_or_length_with_a_note(key, word, work, capsys):
+    rc, out, err = run(["render", str(work / "in.wav"), "--algorithm", "ducker", "--key",
+                        str(work / key), "--out", str(work / "keyed.wav")], capsys)
+    assert rc == 0 and err == ""
+    notes = [line for line in out.splitlines() if line.strip().startswith("note:")]
+    assert 1 <= len(notes) <= 2 and word in notes[0]
+
+
+@pytest.mark.parametrize("what, name", [("timing", "timing.png"), ("latency", "latency.png")])
+def test_measure_plots_are_written(what, name, tmp_path, capsys):
+    pytest.importorskip("matplotlib")
+    rc, out, err = run(["measure", what, "--algorithm", "limiter", "--plot", tmp_path], capsys)
+    assert rc == 0 and err == ""
+    png = tmp_path / name
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and f"plot: {png}" in out

@@ -12,6 +12,7 @@ import pytest
 import scipy.signal as sps
 
 import livedyn
+from livedyn.params import ParamError
 from livedyn.dsp import layout as L
 
 from .reference import (
@@ -376,19 +377,51 @@ def test_unlinked_channels_are_independent():
     assert db(y2[-1, 1]) < db(0.05) - 3  # linked: the loud channel pulls the quiet one down
 
 
-def test_feedback_topology_settles_on_its_own_curve():
-    # [GMR2012] section 2.2 (feedback design): the detector reads the output, so in steady state
-    # the output level y satisfies y = x + g(y), with g the static gain of eq. (3).
+@pytest.mark.parametrize("R", [2.0, 4.0, 10.0, 20.0])
+def test_feedback_topology_holds_the_set_ratio(R):
+    # [GMR2012] section 2.2: in feedback the detector reads the output, so the steady state is
+    # y = x + g(y). livedyn derives g so that the static curve is still eq. (3) of the set
+    # ratio (README "Parameters"): measured with square waves (exact detected level) against
+    # the independent reference of eq. (3).
     fs = 48000
-    x = square(fs, 0.8, 20000)
-    T, R = -24.0, 3.0
-    p = livedyn.Processor("compressor", fs, 1, topology="feedback", threshold=T, ratio=R,
-                          knee=0, attack=1, release=50)
-    y = p.process(x)
-    out = db(y[-1, 0])
-    gain = out - db(0.8)
-    slope = 1 - 1 / R
-    assert abs(gain - (-slope * max(out - T, 0.0))) < 0.01
+    T = -30.0
+    levels = np.array([-40.0, -30.0, -20.0, -10.0, 0.0])
+    got = []
+    for lv in levels:
+        p = livedyn.Processor("compressor", fs, 1, topology="feedback", threshold=T, ratio=R,
+                              knee=0, attack=2, release=50)
+        y = p.process(square(fs, 10 ** (lv / 20), 24000))
+        got.append(db(y[-1, 0]))
+    np.testing.assert_allclose(got, gmr_static_curve(levels, T, R, 0.0), atol=0.01)
+
+
+def test_feedback_reachable_range_is_enforced():
+    # The feedback law reaches ratios 1 to 20, and its loop settles when the attack or the
+    # release one-pole alone would settle it: (R - 1)(1 - a) < 1 + a (livedyn.params.
+    # feedback_problem, derived there; common practice of linearised loop analysis).
+    with pytest.raises(ParamError, match="reaches ratios 1 to 20"):
+        livedyn.Processor("compressor", 48000, 1, topology="feedback", ratio="inf")
+    p = livedyn.Processor("compressor", 8000, 1, topology="feedback", ratio=20, attack=0,
+                          release=100)
+    with pytest.raises(ParamError, match="ratio = 25 with topology = feedback"):
+        p.set("ratio", 25)
+    with pytest.raises(ParamError, match="attack = 0 ms and release = 1 ms .* rings"):
+        p.set("release", 1)
+    # run in the kernel, past the check: the refused pair rings, the accepted ones settle on
+    # the set curve ([GMR2012] eq. (3))
+    from livedyn.params import P_ATTACK, P_RELEASE
+
+    want = gmr_static_curve([db(np.float32(0.5))], -30.0, 20.0, 0.0)[0]
+    for att, rel, rings in ((0.0, 1.0, True), (0.0, 100.0, False), (50.0, 1.0, False)):
+        q = livedyn.Processor("compressor", 8000, 1, topology="feedback", ratio=20, knee=0,
+                              threshold=-30, attack=5, release=100)
+        q.p[P_ATTACK], q.p[P_RELEASE] = att, rel
+        y, tr = q.process_traced(square(8000, 0.5, 16000))
+        spread = np.ptp(tr["gain_db"][-800:, 0])
+        if rings:
+            assert spread > 10.0
+        else:
+            assert spread < 1e-6 and abs(db(y[-1, 0]) - want) < 0.01
 
 
 # ---- robustness -----------------------------------------------------------------------------

@@ -344,3 +344,37 @@ def test_agrees_with_pyloudnorm_on_the_demo_scenario(fs):
         assert ours == pytest.approx(pyln.Meter(fs).integrated_loudness(x64), abs=0.1), name
         deman = pyln.Meter(fs, filter_class="DeMan").integrated_loudness(x64)
         assert ours - deman == pytest.approx(expected, abs=2e-3), name
+
+
+def test_7_1_layout_weights_of_bs1770_table_3():
+    # ITU-R BS.1770-4 Table 3: G = 1.41 (+1.5 dB) for loudspeakers at 60-120 degrees azimuth
+    # (the 7.1 side surrounds Ls, Rs), 1.0 for the front and the back surrounds (135-150
+    # degrees; the azimuth rule recalled from memory), and the LFE channel is not measured.
+    # 8 channels in WAVE_FORMAT_EXTENSIBLE order: L R C LFE Lb Rb Ls Rs.
+    fs = 48000
+    tone = sine(fs, 4.0, -20.0, channels=1)
+
+    def only(i, layout=None):
+        x = np.zeros((tone.shape[0], 8))
+        x[:, i] = tone[:, 0]
+        m = meters.MeterSet(fs, 8, layout=layout) if layout else None
+        if m is None:
+            return run(x, fs).integrated()
+        m.process(np.ascontiguousarray(x, np.float32))
+        return m.loudness.integrated()
+
+    front = only(0)
+    assert only(6) - front == pytest.approx(10 * math.log10(1.41), abs=1e-6)  # +1.49 dB
+    assert only(7) - front == pytest.approx(10 * math.log10(1.41), abs=1e-6)
+    assert only(4) == pytest.approx(front, abs=1e-9)
+    assert only(3) < -150  # the LFE alone: nothing measured
+    assert only(6, "7.1") == pytest.approx(only(6), abs=1e-9)  # 8 channels default to 7.1
+    np.testing.assert_array_equal(ld.default_weights(6, "5.1"), [1, 1, 1, 0, 1.41, 1.41])
+
+
+def test_layout_that_does_not_fit_is_one_line():
+    from livedyn.params import ParamError
+
+    with pytest.raises(ParamError, match=r"layout = 5.1: 6 channels \(L R C LFE Ls Rs\), the "
+                                         r"signal has 2"):
+        meters.MeterSet(48000, 2, layout="5.1")

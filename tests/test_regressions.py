@@ -110,13 +110,15 @@ def test_limiter_link_change_keeps_ceiling_and_gains(loud):
     assert np.isfinite(y).all()
     assert np.abs(y).max() <= ceil * (1 + F32_ULP)  # limiter design guarantee
     g = [effective_gain(y, x, d, c, amp[c]) for c in range(2)]
-    settle = int(0.06 * FS)  # 3 release time constants: 1 - 0.9 e^-3 = 0.955
+    # 3 release time constants; the release is a one-pole in dB (README "Definitions"), so
+    # from 0.1 (-20 dB) the gain is back to 10^(-20 e^-3 / 20) = 0.892 by then
+    settle = int(0.06 * FS)
     # Bound 1: no channel's gain ever falls below half the smallest requirement (0.1) once the
     # first lookahead has passed: a rebuild may restart from the smallest requirement, never 0.
     for c in range(2):
         assert np.nanmin(g[c][2 * d:]) >= 0.05, f"channel {c} gain collapsed"
-    # Bound 2: unlinked, the quiet channel is back above 0.9 within 60 ms of the change ...
-    assert np.nanmin(g[quiet][f1 + settle:f2]) >= 0.9
+    # Bound 2: unlinked, the quiet channel is back above 0.89 within 60 ms of the change ...
+    assert np.nanmin(g[quiet][f1 + settle:f2]) >= 0.89
     # ... and linked again, it follows the loud channel (0.1, not 1).
     assert np.nanmax(g[quiet][f2 + d + 1:]) <= 0.11
     assert np.nanmax(g[loud][f1:]) <= 0.11

@@ -406,3 +406,41 @@ def test_progress_bar_only_on_a_terminal(tmp_path, monkeypatch, capsys):
     render(src, tmp_path / "c.wav", Setup(), progress_min_seconds=30)
     assert term2.getvalue() == ""
     assert math.isclose(sf.info(str(tmp_path / "b.wav")).duration, 1.0)
+
+
+@pytest.mark.parametrize("key_frames", [FS, 3 * FS])
+def test_key_of_another_length_is_padded_or_trimmed(tmp_path, key_frames):
+    # A key shorter than the input is padded with silence, a longer one trimmed (one note
+    # line each); the output equals one Processor call with the key adapted by numpy here.
+    n = 2 * FS
+    t = np.arange(n) / FS
+    main = np.repeat((0.1 * np.sin(2 * np.pi * 997 * t))[:, None], 2, axis=1).astype(np.float32)
+    key = (0.3 * np.random.default_rng(3).uniform(-1, 1, (key_frames, 1))).astype(np.float32)
+    src, kf = write(tmp_path / "music.wav", main), write(tmp_path / "voice.wav", key)
+    s = render(src, tmp_path / "out.wav", Setup(algorithm="ducker"), key_path=kf,
+               blocksize=1000)
+    y, _ = read(tmp_path / "out.wav")
+    adapted = np.zeros((n, 1), np.float32)
+    adapted[:min(n, key_frames)] = key[:n]
+    proc = livedyn.Processor("ducker", FS, 2, key_channels=1, key="external")
+    assert y.tobytes() == proc.process(main, adapted).tobytes()
+    word = "padded" if key_frames < n else "trimmed"
+    assert len(s.notes) == 1 and word in s.notes[0]
+    assert any(line.startswith("  note: key voice.wav") for line in s.lines())
+
+
+def test_key_at_another_rate_is_resampled(tmp_path):
+    # A 44.1 kHz key for a 48 kHz input goes through scipy.signal.resample_poly(x, 160, 147)
+    # (the reference library named in the note line) before it keys the processor.
+    n = 2 * FS
+    main = np.full((n, 1), 0.1, np.float32)
+    k44 = (0.3 * np.random.default_rng(4).uniform(-1, 1, (88200, 1))).astype(np.float32)
+    src, kf = write(tmp_path / "music.wav", main), write(tmp_path / "voice.wav", k44, fs=44100)
+    s = render(src, tmp_path / "out.wav", Setup(algorithm="ducker"), key_path=kf)
+    y, _ = read(tmp_path / "out.wav")
+    k48 = signal.resample_poly(k44.astype(np.float64), 160, 147, axis=0).astype(np.float32)
+    adapted = np.zeros((n, 1), np.float32)
+    adapted[:min(n, len(k48))] = k48[:n]
+    proc = livedyn.Processor("ducker", FS, 1, key_channels=1, key="external")
+    assert y.tobytes() == proc.process(main, adapted).tobytes()
+    assert "resampled to 48000 Hz (scipy.signal.resample_poly, up 160, down 147)" in s.notes[0]

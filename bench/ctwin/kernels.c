@@ -198,6 +198,15 @@ static inline double glide(double v, double target, double g)
     return v + g * d;
 }
 
+/* livedyn.dsp.dynamics.feedback_slope: the curve slope on the output level that gives the set
+ * ratio in feedback (20.0 is livedyn.params.FEEDBACK_MAX_RATIO). */
+static inline double feedback_slope(double slope)
+{
+    if (slope >= 1.0)
+        return 20.0 - 1.0;
+    return slope / (1.0 - slope);
+}
+
 /* numba's math.floor of a float is an int64: floor, then truncation to integer. */
 static inline i64 floor_int(double v) { return (i64)floor(v); }
 
@@ -311,6 +320,9 @@ void ctwin_dynamics_block(const float *x, const float *key, float *out, const do
         AT(st, sc, S_MIX, 0) = t_mix;
         AT(st, sc, S_CEIL, 0) = t_ceil;
         AT(st, sc, S_HYST, 0) = t_hyst;
+        if (gate_like && p[P_START] == 0.0) /* START_CLOSED */
+            for (i64 g = 0; g < sc; g++)
+                AT(st, sc, R_Y, g) = -t_range;
         AT(st, sc, S_READY, 0) = 1.0;
     }
     double thr = AT(st, sc, S_THR, 0);
@@ -324,6 +336,7 @@ void ctwin_dynamics_block(const float *x, const float *key, float *out, const do
     int gliding = 1;
     double ceil_lin = db_to_amp(ceil_db);
     double mk_auto = automakeup ? -compressor_gain(0.0, thr, slope, knee) : 0.0;
+    double fb_slope = feedback_slope(slope);
 
     i64 d_cur = (i64)AT(st, sc, S_DCUR, 0);
     i64 d_old = (i64)AT(st, sc, S_DOLD, 0);
@@ -347,6 +360,7 @@ void ctwin_dynamics_block(const float *x, const float *key, float *out, const do
             ceil_lin = db_to_amp(ceil_db);
             if (automakeup)
                 mk_auto = -compressor_gain(0.0, thr, slope, knee);
+            fb_slope = feedback_slope(slope);
             gliding = !(thr == t_thr && slope == t_slope && knee == t_knee && mk == t_mk
                         && rng == t_range && mix == t_mix && ceil_db == t_ceil
                         && hyst == t_hyst);
@@ -453,7 +467,7 @@ void ctwin_dynamics_block(const float *x, const float *key, float *out, const do
 
             double gc;
             if (law == LAW_COMPRESSOR) {
-                gc = compressor_gain(x_db, thr, slope, knee);
+                gc = compressor_gain(x_db, thr, feedback ? fb_slope : slope, knee);
             } else if (law == LAW_DUCKER) {
                 gc = ducker_gain(x_db, thr, slope, knee, rng);
             } else {
@@ -859,7 +873,8 @@ void ctwin_limiter_block(const float *x, const float *key, float *out, const dou
                 AT(st, sc, R_HOLD, g) -= 1.0;
                 gn = gp;
             } else {
-                gn = a_rel * gp + (1.0 - a_rel) * b;
+                /* release one-pole on the gain in dB */
+                gn = exp(a_rel * log(gp) + (1.0 - a_rel) * log(b));
                 if (gn > b)
                     gn = b;
             }

@@ -41,6 +41,23 @@ class Algorithm:
         return kernel_for(self.kind)
 
 
+def _limiter_schema():
+    """The limiter's parameters; its attack is a ramp, not a one-pole, and says so."""
+    import dataclasses
+
+    schema = Schema.of(ceiling=-1.0, lookahead=5.0, attack=5.0, release=80.0, hold=0.0,
+                       true_peak="off", link="max")
+    schema.params["attack"] = dataclasses.replace(
+        schema.params["attack"],
+        help="length of the straight ramp of the linear gain down to a peak's requirement, "
+             "starting when the peak enters the lookahead (at most the lookahead)")
+    schema.params["release"] = dataclasses.replace(
+        schema.params["release"],
+        help="one-pole time constant tau of the recovery in dB (63 % of a step's dB change "
+             "after tau), after the lookahead's hold")
+    return schema
+
+
 _KEY = dict(key="main", key_hpf=0.0, key_lpf=0.0, key_bpf=0.0, key_q=1.0, link="max")
 
 BUILTINS = {
@@ -60,10 +77,7 @@ BUILTINS = {
         Algorithm(
             "limiter",
             "lookahead peak limiter: no output sample passes the ceiling when lookahead >= attack",
-            Schema.of(
-                ceiling=-1.0, lookahead=5.0, attack=5.0, release=80.0, hold=0.0, true_peak="off",
-                link="max",
-            ),
+            _limiter_schema(),
             "limiter", 0,
         ),
         Algorithm(
@@ -71,7 +85,7 @@ BUILTINS = {
             "downward expander: below threshold, output falls `ratio` dB per dB, down to -range",
             Schema.of(
                 threshold=-45.0, ratio=2.0, knee=6.0, range=40.0, hysteresis=0.0, attack=1.0,
-                release=100.0, hold=20.0, makeup=0.0, detector="peak", rms_time=10.0,
+                release=100.0, hold=20.0, start="closed", makeup=0.0, detector="peak", rms_time=10.0,
                 lookahead=0.0, mix=100.0, ceiling=0.0, **_KEY,
             ),
             "dynamics", LAW_EXPANDER,
@@ -81,7 +95,7 @@ BUILTINS = {
             "noise gate: opens above threshold, closes below threshold - hysteresis, to -range",
             Schema.of(
                 threshold=-45.0, hysteresis=4.0, range=60.0, attack=0.5, release=80.0,
-                hold=50.0, makeup=0.0, detector="peak", rms_time=10.0, lookahead=0.0,
+                hold=50.0, start="closed", makeup=0.0, detector="peak", rms_time=10.0, lookahead=0.0,
                 mix=100.0, ceiling=0.0, **_KEY,
             ),
             "dynamics", LAW_GATE,

@@ -9,8 +9,14 @@ the delayed sample x[n - L] is built in three steps:
    b[n] = mean(m[n - A .. n]). Every m[j] in that average has r[n - L] inside its window
    (j - L <= n - L <= j), so b[n] <= r[n - L]: the delayed sample cannot pass the ceiling, and
    the gain moves to its target along a straight line over A samples;
-3. release: g[n] = min(b[n], a g[n-1] + (1 - a) b[n]) with the release one-pole a (and hold),
-   which never rises above b.
+3. release: a one-pole on the gain in dB, 20 log10 g[n] = a 20 log10 g[n-1] + (1 - a)
+   20 log10 b[n], with the release coefficient a = exp(-1 / (tau fs)) (and hold), taken only
+   while b[n] is above g[n-1] and clamped to b[n], so it never rises above b. A step of the
+   requirement therefore recovers 63 % of its dB change after tau, as every other release.
+
+The attack is not a one-pole: step 2 turns a step of the requirement into a straight ramp of
+the *linear* gain over A = attack samples, which ends at the sample that needed it (the ramp
+starts L - A samples after that sample entered the lookahead).
 
 A last clamp g <= r of the sample leaving (and of the old delay tap during a lookahead
 crossfade) absorbs floating-point rounding; the kernel counts every sample where it cut the gain
@@ -39,7 +45,7 @@ from ..params import (
     DELAY_XFADE_MS, GLIDE_MS, LINK_NONE, P_ATTACK, P_CEILING, P_HOLD, P_LINK, P_LOOKAHEAD, P_RELEASE,
     P_SAMPLERATE, P_TRUE_PEAK,
 )
-from .dynamics import glide
+from .dynamics import glide, ring_back, tap_fade
 from .layout import (
     S_LIM_NGAIN, S_LIM_TP, R_BOX, R_DQ_HEAD, R_DQ_LEN, R_G, R_GAIN, R_HOLD, R_MEAS, R_TAPS, R_TP, R_TP_POS, RING_DQ_IDX,
     RING_DQ_VAL, RING_M, RING_REQ, S_ATT, S_CEIL, S_CLAMP, S_DCUR, S_DOLD, S_FRAMES, S_GR_MAX,
@@ -294,7 +300,9 @@ def limiter_block(x, key, out, p, st, ring, tr):
                 st[R_HOLD, g] -= 1.0
                 gn = gp
             else:
-                gn = a_rel * gp + (1.0 - a_rel) * b
+                # the release one-pole acts on the gain in dB (so tau is 63 % of the recovery
+                # in dB): ln gn = a ln gp + (1 - a) ln b
+                gn = math.exp(a_rel * math.log(gp) + (1.0 - a_rel) * math.log(b))
                 if gn > b:
                     gn = b
             # last clamp: the requirement of the sample(s) this gain is applied to
@@ -331,18 +339,10 @@ def limiter_block(x, key, out, p, st, ring, tr):
                 tr[T_TOTAL, n, g] = gdb
         for c in range(ch):
             g = 0 if ngain == 1 else c
-            # the delayed sample, crossfading from the old delay (written out here rather than
-            # called: a call passing the ring array keeps a reference-count pair per sample)
-            i = w - d_cur
-            if i < 0:
-                i += n_ring
-            xd = ring[i, c]
+            # the delayed sample, crossfading from the old delay (see dynamics.ring_back)
+            xd = ring[ring_back(w, d_cur, n_ring), c]
             if xf > 0.0:
-                j = w - d_old
-                if j < 0:
-                    j += n_ring
-                wgt = 1.0 - xf / xf_len
-                xd = wgt * xd + (1.0 - wgt) * ring[j, c]
+                xd = tap_fade(xd, ring[ring_back(w, d_old, n_ring), c], xf, xf_len)
             out[n, c] = xd * st[R_GAIN, g]
         if xf > 0.0:
             xf -= 1.0

@@ -30,7 +30,8 @@ Conventions
   no state becomes subnormal in silence.
 * Channel weights ``G_i`` (BS.1770-4 Table 3): 1.0 per channel; for 6 channels in the order
   L R C LFE Ls Rs: 1, 1, 1, 0, 1.41, 1.41 (the LFE channel is not measured); for 5 channels in
-  the order L R C Ls Rs: 1, 1, 1, 1.41, 1.41.
+  the order L R C Ls Rs: 1, 1, 1, 1.41, 1.41; for 8 channels in the order L R C LFE Lb Rb Ls
+  Rs: 1, 1, 1, 0, 1, 1, 1.41, 1.41. Other layouts by name: :data:`LAYOUTS`.
 * When a histogram bin straddles the relative gate, the whole bin is taken or left by its mean
   energy; the bins are 0.01 LU wide, so this touches only blocks within 0.01 LU of the gate.
 
@@ -184,11 +185,43 @@ def hop_length(fs):
     return int(round(_check_fs(fs) / 10.0))
 
 
-def default_weights(channels):
-    """Channel weights G_i of BS.1770-4 Table 3 for a channel count (see module notes)."""
+#: Channel layouts and their weights G_i (ITU-R BS.1770-4, Table 3: the LFE channel is not
+#: measured; a loudspeaker at 60 to 120 degrees azimuth, the surrounds of 5.1 and the side
+#: surrounds of 7.1, weighs 1.41 (+1.5 dB); the others 1.0 (the 7.1 back surrounds, at 135 to
+#: 150 degrees, therefore 1.0: the table's azimuth rule, recalled from memory)). Channel order
+#: as in WAVE_FORMAT_EXTENSIBLE files.
+LAYOUTS = {
+    "mono": ("C", (1.0,)),
+    "stereo": ("L R", (1.0, 1.0)),
+    "5.0": ("L R C Ls Rs", (1.0, 1.0, 1.0, 1.41, 1.41)),
+    "5.1": ("L R C LFE Ls Rs", (1.0, 1.0, 1.0, 0.0, 1.41, 1.41)),
+    "7.1": ("L R C LFE Lb Rb Ls Rs", (1.0, 1.0, 1.0, 0.0, 1.0, 1.0, 1.41, 1.41)),
+}
+
+
+def layout_weights(layout, channels):
+    """The weights G_i of a named layout (:data:`LAYOUTS`) for a file of ``channels``
+    channels; ValueError with a one-line reason when the layout is unknown or does not fit."""
+    if layout not in LAYOUTS:
+        raise ValueError(f"layout = {layout!r}: expected one of {', '.join(LAYOUTS)}")
+    order, weights = LAYOUTS[layout]
+    if len(weights) != int(channels):
+        raise ValueError(f"layout = {layout}: {len(weights)} channels ({order}), the signal "
+                         f"has {channels}")
+    return np.array(weights, dtype=np.float64)
+
+
+def default_weights(channels, layout=None):
+    """Channel weights G_i of BS.1770-4 Table 3 for a channel count (see module notes), or
+    for a named ``layout`` (:func:`layout_weights`): 6 channels are taken as 5.1 and 8 as
+    7.1 unless a layout says otherwise."""
     channels = int(channels)
     if channels < 1:
         raise ValueError(f"channels = {channels}: out of range, expected 1 or more")
+    if layout is not None:
+        return layout_weights(layout, channels)
+    if channels == 8:
+        return layout_weights("7.1", 8)
     if channels == 6:
         return np.array([1.0, 1.0, 1.0, 0.0, 1.41, 1.41])
     if channels == 5:
