@@ -255,6 +255,45 @@ def _channel_list(text, what):
     return chans
 
 
+#: Output level a live run starts at, dB (a choice of ours for hearing: 12 dB below unity,
+#: common practice of starting a monitor low, no source).
+DEFAULT_OUTPUT_LEVEL_DB = -12.0
+
+
+def _start_controls(eng, args):
+    """The remote controls a run asked for (None when none): MIDI from --midi."""
+    if not args.midi:
+        return None
+    from .control.hub import Controls
+    from .control.midi import MidiControl, MidiError, load_mappings, open_port
+
+    try:
+        mappings = load_mappings(args.midi_map) if args.midi_map else []
+        controls = Controls(eng)
+        for m in mappings:
+            controls.check_target(m.target)
+        port, name = open_port(args.midi)
+    except MidiError as e:
+        raise CliError(str(e)) from None
+    MidiControl(controls, port, mappings, name).start()
+    print(f"MIDI: reading {name} ({len(mappings)} mappings)", flush=True)
+    return controls.start()
+
+
+def _print_midi_ports():
+    try:
+        from .control.midi import list_ports
+
+        ports = list_ports()
+    except Exception as e:  # MIDI is optional to the audio listing
+        print(f"MIDI inputs: unavailable ({str(e).splitlines()[0]})")
+        return
+    if not ports:
+        print("MIDI inputs: none (no JACK server or ALSA sequencer answers)")
+    for i, p in enumerate(ports):
+        print(f"MIDI input {i}: {p['api']}: {p['name']}  (--midi {i})")
+
+
 def cmd_devices(args):
     from .engine.stream import DeviceError, list_devices
 
@@ -270,6 +309,7 @@ def cmd_devices(args):
     for d in devs:
         print(f"{d['index']:>3}  {d['name'][:32]:32} {d['hostapi'][:28]:28} {d['inputs']:>3} "
               f"{d['outputs']:>4} {d['samplerate']:>8.0f}")
+    _print_midi_ports()
     return 0
 
 
@@ -311,7 +351,7 @@ def _run_with_status_lines(eng, server, main_src, args, seconds):
     return None
 
 
-def _run_with_console(eng, server, main_src, args, seconds):
+def _run_with_console(eng, server, main_src, args, seconds, controls=None):
     """The full-screen console until the user quits (or the time is up)."""
     from .console import run_console
 
@@ -324,7 +364,8 @@ def _run_with_console(eng, server, main_src, args, seconds):
 
     try:
         run_console(eng, title="livedyn run" + (" (headless)" if server else ""),
-                    check=check, quit_after=seconds, refresh_hz=args.ui_refresh)
+                    check=check, quit_after=seconds, refresh_hz=args.ui_refresh,
+                    controls=controls)
     except KeyboardInterrupt:
         pass
     if server is not None and not server.alive():
@@ -395,8 +436,12 @@ def _cmd_run(args):
         raise CliError(f"--watch: {proc.algorithm.name} is built in; --watch reloads an "
                        "algorithm file (--algorithm FILE.py)")
     _print_report(proc.algorithm)
-    if args.headless and seconds is None and main_src is None:
-        seconds = 10.0
+    from .params import OUTPUT_LEVEL, ParamError
+
+    try:
+        out_level = OUTPUT_LEVEL.parse(args.output_level)
+    except ParamError as e:
+        raise CliError(f"--output-level {args.output_level}: {e}") from None
 
     server = None
     if args.headless:
@@ -412,7 +457,8 @@ def _cmd_run(args):
         eng = Engine(proc, args.blocksize, device=args.device if not args.headless else "system",
                      input_device=args.input_device, output_device=args.output_device,
                      main_inputs=main_in, key_inputs=key_in, outputs=outs, main_source=main_src,
-                     key_source=key_src, record_dir=args.record, monitor=args.monitor)
+                     key_source=key_src, record_dir=args.record, monitor=args.monitor,
+                     output_level_db=out_level)
         print(f"{proc.algorithm.name}: " +
               ", ".join(f"{k} {v}" for k, v in proc.describe().items()))
         print(f"latency: processor {proc.latency_samples} samples", end="")
@@ -438,10 +484,15 @@ def _cmd_run(args):
         watcher = FileWatcher(eng, proc.algorithm.source).start()
         print(f"watching {proc.algorithm.source}: save it to hear the new version", flush=True)
     failure = None
+    controls = _start_controls(eng, args)
+    if seconds is None and (main_src is None or args.loop):
+        print("runs until you stop it (q in the console, Ctrl+C otherwise)", flush=True)
     if not args.no_ui and sys.stdin.isatty() and sys.stdout.isatty():
-        failure = _run_with_console(eng, server, main_src, args, seconds)
+        failure = _run_with_console(eng, server, main_src, args, seconds, controls)
     else:
         failure = _run_with_status_lines(eng, server, main_src, args, seconds)
+    if controls is not None:
+        controls.stop()
     if watcher is not None:
         watcher.stop()
     snap = eng.snapshot()
@@ -686,6 +737,14 @@ def build_parser():
     rn.add_argument("--stats-json", metavar="FILE", help="write the run's statistics here")
     rn.add_argument("--monitor", choices=["out", "key", "delta"], default="out",
                     help="what the outputs carry: processed, filtered key, or what was removed")
+    rn.add_argument("--output-level", default=str(DEFAULT_OUTPUT_LEVEL_DB), metavar="DB",
+                    help="level of the device outputs in dB, -60 to 0 or off (default "
+                         f"{DEFAULT_OUTPUT_LEVEL_DB:g}: start low and raise it; meters and "
+                         "recordings are taken before it)")
+    rn.add_argument("--midi", metavar="PORT",
+                    help="read MIDI control from this input port (index, name or a unique part "
+                         "of it; livedyn devices lists them)")
+    rn.add_argument("--midi-map", metavar="FILE", help="MIDI mappings to start with (TOML)")
     rn.add_argument("--no-ui", action="store_true",
                     help="no console: print one status line a second (also when not on a "
                          "terminal)")
