@@ -40,6 +40,8 @@ import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 
+import mido
+
 from ..params import ParamError
 from . import taper
 from .hub import ACTIONS
@@ -229,6 +231,20 @@ def save_mappings(mappings, path) -> Path:
     return target
 
 
+def coalesce(batch):
+    """The messages of ``batch`` (raw, in arrival order) worth handling: of several control
+    changes of one controller on one channel only the last (a later value replaces an earlier
+    one, as the publication would anyway); notes, programs and the rest all, in order."""
+    last = {}
+    for i, d in enumerate(batch):
+        if len(d) == 3 and 0xB0 <= d[0] <= 0xBF:
+            last[(d[0], d[1])] = i
+    if len(last) == sum(1 for d in batch if len(d) == 3 and 0xB0 <= d[0] <= 0xBF):
+        return batch
+    return [d for i, d in enumerate(batch)
+            if not (len(d) == 3 and 0xB0 <= d[0] <= 0xBF) or last[(d[0], d[1])] == i]
+
+
 # ---- the reader ------------------------------------------------------------------------------
 
 class MidiControl:
@@ -285,25 +301,25 @@ class MidiControl:
     def _run(self):
         port = self.port
         while not self._stop.is_set():
-            got = 0
-            while got < 1024:
+            batch = []
+            while len(batch) < 4096:
                 try:
                     m = port.get_message()
                 except Exception:
                     m = None
                 if m is None:
                     break
-                got += 1
-                self.feed(m[0])
+                batch.append(m[0])
+            for data in coalesce(batch):
+                self.feed(data)
+            self.received += len(batch) - len(batch and coalesce(batch))
             self._learn_timeout()
-            if not got:
+            if not batch:
                 self._stop.wait(0.0005)
 
     # ---- messages ------------------------------------------------------------------------------
     def feed(self, data):
         """Handle one raw MIDI message (a list of bytes); never raises."""
-        import mido
-
         self.received += 1
         try:
             msg = mido.Message.from_bytes(list(data))
