@@ -260,23 +260,55 @@ def _channel_list(text, what):
 DEFAULT_OUTPUT_LEVEL_DB = -12.0
 
 
-def _start_controls(eng, args):
-    """The remote controls a run asked for (None when none): MIDI from --midi."""
-    if not args.midi:
+def _osc_options(args):
+    """Check --osc, --osc-bind and --osc-allow before anything opens: ``(bind, networks,
+    warning)`` or None without --osc."""
+    if args.osc is None:
+        if args.osc_bind or args.osc_allow:
+            raise CliError("--osc-bind and --osc-allow need --osc [PORT]")
+        return None
+    from .control.osc import OscError, check_bind
+
+    if not 0 <= args.osc <= 65535:
+        raise CliError(f"--osc {args.osc}: expected a UDP port 1 to 65535 (0: any free port)")
+    try:
+        return check_bind(args.osc_bind or "127.0.0.1", args.osc_allow)
+    except OscError as e:
+        raise CliError(str(e)) from None
+
+
+def _start_controls(eng, args, osc=None):
+    """The remote controls a run asked for (None when none): MIDI from --midi, OSC from
+    --osc (``osc`` from :func:`_osc_options`)."""
+    if not args.midi and osc is None:
         return None
     from .control.hub import Controls
     from .control.midi import MidiControl, MidiError, load_mappings, open_port
 
-    try:
-        mappings = load_mappings(args.midi_map) if args.midi_map else []
-        controls = Controls(eng)
-        for m in mappings:
-            controls.check_target(m.target)
-        port, name = open_port(args.midi)
-    except MidiError as e:
-        raise CliError(str(e)) from None
-    MidiControl(controls, port, mappings, name).start()
-    print(f"MIDI: reading {name} ({len(mappings)} mappings)", flush=True)
+    controls = Controls(eng)
+    if args.midi:
+        try:
+            mappings = load_mappings(args.midi_map) if args.midi_map else []
+            for m in mappings:
+                controls.check_target(m.target)
+            port, name = open_port(args.midi)
+        except MidiError as e:
+            raise CliError(str(e)) from None
+        MidiControl(controls, port, mappings, name).start()
+        print(f"MIDI: reading {name} ({len(mappings)} mappings)", flush=True)
+    if osc is not None:
+        from .control.osc import OscControl, OscError
+
+        bind, nets, warning = osc
+        try:
+            o = OscControl(controls, args.osc, bind=bind, allow=nets)
+        except OscError as e:
+            controls.stop()
+            raise CliError(str(e)) from None
+        if warning:
+            print(f"Warning: {warning}", flush=True)
+        print(o.describe(), flush=True)
+        o.start()
     return controls.start()
 
 
@@ -406,6 +438,7 @@ def _cmd_run(args):
     key_in = _channel_list(args.key_inputs, "--key-inputs")
     outs = _channel_list(args.outputs, "--outputs")
     setup = _setup_from(args)
+    osc = _osc_options(args)
     main_src = key_src = None
     seconds = args.seconds
     interactive = not args.no_ui and sys.stdin.isatty() and sys.stdout.isatty()
@@ -484,7 +517,7 @@ def _cmd_run(args):
         watcher = FileWatcher(eng, proc.algorithm.source).start()
         print(f"watching {proc.algorithm.source}: save it to hear the new version", flush=True)
     failure = None
-    controls = _start_controls(eng, args)
+    controls = _start_controls(eng, args, osc)
     if seconds is None and (main_src is None or args.loop):
         print("runs until you stop it (q in the console, Ctrl+C otherwise)", flush=True)
     if not args.no_ui and sys.stdin.isatty() and sys.stdout.isatty():
@@ -745,6 +778,17 @@ def build_parser():
                     help="read MIDI control from this input port (index, name or a unique part "
                          "of it; livedyn devices lists them)")
     rn.add_argument("--midi-map", metavar="FILE", help="MIDI mappings to start with (TOML)")
+    from .control.osc import DEFAULT_PORT as OSC_PORT
+
+    rn.add_argument("--osc", type=int, nargs="?", const=OSC_PORT, metavar="PORT",
+                    help=f"take OSC control on this UDP port (default {OSC_PORT}; on 127.0.0.1 "
+                         "only unless --osc-bind)")
+    rn.add_argument("--osc-bind", metavar="ADDRESS",
+                    help="listen for OSC on this IPv4 address instead of 127.0.0.1 (0.0.0.0: "
+                         "every interface); needs --osc-allow")
+    rn.add_argument("--osc-allow", metavar="NET,...",
+                    help="senders OSC accepts: addresses or networks (192.168.1.20, "
+                         "192.168.1.0/24), comma-separated; default 127.0.0.0/8")
     rn.add_argument("--no-ui", action="store_true",
                     help="no console: print one status line a second (also when not on a "
                          "terminal)")

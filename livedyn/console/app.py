@@ -248,6 +248,7 @@ def build_app(engine, input=None, output=None, title="livedyn console", check=No
         lambda: app.create_background_task(_meter_task(app, model, period, quit_after)))
     if controls is not None:
         controls.attach_console()  # actions from MIDI/OSC now run in the console
+        controls.console_state = lambda: {"slot": model.active}  # for OSC queries
     app.console_model = model
     app.console_actions = actions
     return app

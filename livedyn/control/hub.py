@@ -60,7 +60,8 @@ class Controls:
         self.published = 0  # engine.set calls made for them
         self.refused = 0  # values the engine refused
         self.midi = None  # livedyn.control.midi.MidiControl, when one runs
-        self.osc = None
+        self.osc = None  # livedyn.control.osc.OscControl, when one runs
+        self.console_state = None  # a callable giving {"slot": "a"|"b"} when a console runs
         self._stop = threading.Event()
         self._thread = None
         self._last_flush = 0.0
@@ -193,6 +194,25 @@ class Controls:
         post = getattr(self.engine, "notice", None)
         if callable(post):
             post(level, text)
+
+    def state(self) -> dict:
+        """Mute, bypass (0/1) and, with a console, the settings slot: what a remote surface
+        shows beside the values."""
+        snap = getattr(self.engine, "snapshot", None)
+        out = dict(self._state)
+        if callable(snap):
+            try:
+                s = snap()
+                out = {"mute": s["muted"], "bypass": s["bypassed"]}
+            except Exception:
+                pass
+        out = {k: int(bool(v)) for k, v in out.items()}
+        if callable(self.console_state):
+            try:
+                out.update(self.console_state())
+            except Exception:
+                pass
+        return out
 
     def take_for_console(self) -> ConsoleTake:
         with self._lock:
