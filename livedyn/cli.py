@@ -464,6 +464,7 @@ def _cmd_run(args):
         # the scene's music alone: this algorithm has no key input for the narrator
         print("(--key-demo: the algorithm has no key input; playing the scene's music only)")
         key_src, kch = None, 0
+    main_src, key_src, ch, kch = _test_sources(args, fs, main_src, key_src, ch, kch)
     proc = build_processor(setup, fs, ch, kch)
     if args.watch and proc.algorithm.source is None:
         raise CliError(f"--watch: {proc.algorithm.name} is built in; --watch reloads an "
@@ -518,7 +519,7 @@ def _cmd_run(args):
         print(f"watching {proc.algorithm.source}: save it to hear the new version", flush=True)
     failure = None
     controls = _start_controls(eng, args, osc)
-    if seconds is None and (main_src is None or args.loop):
+    if seconds is None and (main_src is None or args.loop or main_src.kind != "input"):
         print("runs until you stop it (q in the console, Ctrl+C otherwise)", flush=True)
     if not args.no_ui and sys.stdin.isatty() and sys.stdout.isatty():
         failure = _run_with_console(eng, server, main_src, args, seconds, controls)
@@ -555,6 +556,44 @@ def _cmd_run(args):
           f"{100 * snap['callback_load']['p99_9']:.1f} % of the block period"
           + (f"; recorded to {args.record}/" if args.record else ""))
     return 0
+
+
+def _test_sources(args, fs, main_src, key_src, ch, kch):
+    """--test-main / --test-key: a built-in test source as the main or key input; a file or
+    demo input is wrapped in one too, so that the console's ``source`` command can switch to a
+    test signal and back (``source main input``)."""
+    from .control.sources import SourceError, TestSource
+
+    if args.test_main:
+        if args.input_file:
+            raise CliError(f"--test-main {args.test_main}: leave out --input-file (the main "
+                           "input is one or the other)")
+        if main_src is not None and hasattr(main_src, "close"):
+            main_src.close()
+        ch = len(_channel_list(args.main_inputs, "--main-inputs") or [1, 2])
+        main_src = _make_test(TestSource, SourceError, "--test-main", fs, ch, args.test_main)
+    elif main_src is not None:
+        main_src = TestSource(fs, main_src.channels, inner=main_src)
+    if args.test_key:
+        if args.key_file:
+            raise CliError(f"--test-key {args.test_key}: leave out --key-file (the key "
+                           "input is one or the other)")
+        kch = len(_channel_list(args.key_inputs, "--key-inputs") or [1])
+        key_src = _make_test(TestSource, SourceError, "--test-key", fs, kch, args.test_key)
+    elif key_src is not None:
+        key_src = TestSource(fs, key_src.channels, inner=key_src)
+    for what, src in (("main", main_src), ("key", key_src)):
+        if src is not None and src.kind != "input":
+            print(f"test source as the {what} input: {src.description} (never above "
+                  "-6 dBFS)", flush=True)
+    return main_src, key_src, ch, kch
+
+
+def _make_test(cls, err, option, fs, channels, spec):
+    try:
+        return cls(fs, channels, spec)
+    except err as e:
+        raise CliError(f"{option} {spec}: {e}") from None
 
 
 def _has_key(setup):
@@ -761,6 +800,12 @@ def build_parser():
     rn.add_argument("--outputs", metavar="1,2", help="device channels that carry the output")
     rn.add_argument("--input-file", metavar="F", help="play a WAV file as the main input")
     rn.add_argument("--key-file", metavar="F", help="play a WAV file as the key input")
+    rn.add_argument("--test-main", metavar="KIND[:ARGS]",
+                    help="a built-in test signal as the main input: tone[:HZ[:DBFS]], "
+                         "pink[:DBFS], white[:DBFS], sweep[:F1[:F2[:SECONDS[:DBFS]]]], "
+                         "bursts[:HZ[:HIGH[:LOW[:ON_MS[:OFF_MS]]]]] (never above -6 dBFS)")
+    rn.add_argument("--test-key", metavar="KIND[:ARGS]",
+                    help="a built-in test signal as the key input (same kinds)")
     rn.add_argument("--key-demo", action="store_true",
                     help="the rehearsal demo: the narrator ducks the music bed")
     rn.add_argument("--loop", action="store_true", help="loop file and demo inputs")

@@ -99,3 +99,25 @@ def test_save_and_load_by_bare_name_and_replacing_asks():
     shipped = presets.list_presets(presets.presets_dir())[0][0]
     m.run_command(f"save {presets.presets_dir() / (shipped + '.toml')}")
     assert m.status.kind == "error" and "shipped" in m.status.text
+
+
+@pytest.mark.parametrize("size", [(24, 80), (40, 120)])
+def test_a_test_source_switched_from_the_command_line(size):
+    from livedyn.control.sources import TestSource
+    from livedyn.engine.engine import ArraySource
+    import numpy as np
+
+    e = FakeEngine()
+    e.main_source = TestSource(48000, 2, inner=ArraySource(np.zeros((4800, 2), np.float32)))
+    m = ConsoleModel(e)
+    app, _, screens = drive(e, [":source main tone 440 -18\r", ":source main tone 440 0\r",
+                                ":source main pink\r", ":source key tone\r",
+                                ":source main input\r", ":quit\r"], size=size, model=m)
+    texts = [t for _, _, t, _ in m.log.entries]
+    assert any(t.startswith("main input: tone 440 Hz at -18 dBFS") for t in texts)
+    assert any("above the test sources' limit, expected at most -6 dBFS" in t for t in texts)
+    assert any("main input: pink noise" in t for t in texts)
+    assert any("the key input is not a test source" in t for t in texts)
+    assert e.main_source.kind == "input"
+    flat = [" ".join(s.split()) for s in screens]
+    assert any("tone 440 Hz at -18 dBFS" in f for f in flat)

@@ -41,8 +41,10 @@ VERBS = {
     "redo": ("", "put back what the last undo took away"),
     "algorithm": ("NAME|FILE", "change the running algorithm (built-in name or algorithm file), "
                                "crossfaded in; shared parameters keep their values"),
-    "source": ("main|key KIND ...", "reprogram a test source: tone HZ DBFS, pink DBFS, white "
-                                    "DBFS, sweep F1 F2 SECONDS DBFS, bursts HZ DBFS ON_S OFF_S"),
+    "source": ("main|key KIND ...", "switch a test source: tone [HZ [DBFS]], pink [DBFS], "
+                                    "white [DBFS], sweep [F1 [F2 [SECONDS [DBFS]]]], bursts "
+                                    "[HZ [HIGH [LOW [ON_MS [OFF_MS]]]]], input (the run's own); "
+                                    "never above -6 dBFS"),
     "reset": ("", "count late and flagged blocks from 0 again"),
     "learn": ("[TARGET]", "MIDI learn: the next control you move drives TARGET (default the "
                           "chosen parameter; also output_level, mute, bypass, slot, compare, "
