@@ -394,12 +394,20 @@ def _run_with_console(eng, server, main_src, args, seconds, controls=None):
             return "the input has played to its end"
         return None
 
+    own = controls is None  # the console's midi command needs the remote-control hub
+    if own:
+        from .control.hub import Controls
+
+        controls = Controls(eng).start()
     try:
         run_console(eng, title="livedyn run" + (" (headless)" if server else ""),
                     check=check, quit_after=seconds, refresh_hz=args.ui_refresh,
                     controls=controls)
     except KeyboardInterrupt:
         pass
+    finally:
+        if own:
+            controls.stop()
     if server is not None and not server.alive():
         return f"the JACK server {server.name} stopped while the stream ran (killed or crashed)"
     return eng.error

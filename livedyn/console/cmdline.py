@@ -93,6 +93,8 @@ class CommandLine:
             self.forget(arg or None)
         elif v == "mappings":
             self.mappings_command(arg)
+        elif v == "midi":
+            self.midi_port(arg)
         elif v == "quit":  # typed out in full: that is the confirmation
             self.quit_requested = True
             self.info("quit")

@@ -51,6 +51,8 @@ VERBS = {
                           "'preset NAME')"),
     "forget": ("[TARGET]", "remove the MIDI mappings of TARGET (default the chosen parameter)"),
     "mappings": ("save|load FILE", "write or read the MIDI mappings (a TOML file)"),
+    "midi": ("[PORT|off]", "read MIDI from another input port (index, name or a unique part; "
+                           "the mappings stay); no argument: list the ports"),
     "log": ("", "every message so far, with its time"),
     "help": ("", "show this help"),
     "quit": ("", "leave now, without the question q asks while sound plays (the engine stops "
@@ -59,13 +61,13 @@ VERBS = {
 #: Words a verb accepts (None: free text such as a file name).
 VERB_WORDS = {
     "load": None, "save": None, "algorithm": None, "source": None, "mappings": None,
-    "learn": None, "forget": None, "output": None,
+    "learn": None, "forget": None, "output": None, "midi": None,
     "bypass": ("on", "off"), "mute": ("on", "off"), "match": ("on", "off"),
     "monitor": ("out", "key", "delta"), "slot": ("a", "b"),
     "compare": (), "undo": (), "redo": (), "reset": (), "log": (), "help": (), "quit": (),
 }
 #: Verbs whose argument may be left out.
-OPTIONAL_ARG = {"bypass", "mute", "match", "learn", "forget"}
+OPTIONAL_ARG = {"bypass", "mute", "match", "learn", "forget", "midi"}
 
 
 class CommandError(ValueError):

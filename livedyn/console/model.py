@@ -772,6 +772,41 @@ class ConsoleModel(CommandLine, Metering):
             path = midi.load_mappings(where.strip())
             self.info(f"loaded {len(midi.mappings)} MIDI mappings from {path}")
 
+    def midi_port(self, text=""):
+        """``midi`` lists the MIDI input ports; ``midi PORT`` reads from that port instead
+        (the mappings stay); ``midi off`` stops reading MIDI."""
+        from ..control import midi as m
+
+        text = str(text or "").strip()
+        if not text:
+            ports = m.list_ports()
+            now = getattr(getattr(self.controls, "midi", None), "port_name", "") or "none"
+            listed = "; ".join(f"{i}: {p['api']}: {p['name']}" for i, p in enumerate(ports))
+            self.info(f"MIDI inputs: {listed or 'none (no JACK server or ALSA sequencer)'}; "
+                      f"reading: {now}")
+            return
+        if self.controls is None:
+            raise ConsoleError("midi: this console has no remote controls")
+        old = self.controls.midi
+        if text.lower() == "off":
+            if old is None:
+                raise ConsoleError("midi off: no MIDI input is open")
+            old.stop()
+            self.controls.midi = None
+            self.info(f"MIDI: stopped reading {old.port_name} (its mappings are forgotten; "
+                      "mappings save FILE keeps them)")
+            return
+        try:
+            port, name = m.open_port(text, client="livedyn")
+        except m.MidiError as e:
+            raise ConsoleError(str(e).replace("--midi ", "midi ", 1)) from None
+        kept = list(old.mappings) if old is not None else []
+        if old is not None:
+            old.stop()
+        m.MidiControl(self.controls, port, kept, name).start()
+        self.info(f"MIDI: reading {name} ({len(kept)} mapping{'s' if len(kept) != 1 else ''} "
+                  "kept)")
+
     def mapping_label(self, name) -> str:
         midi = getattr(self.controls, "midi", None)
         return midi.label(name) if midi is not None else ""
