@@ -441,6 +441,7 @@ def _cmd_run(args):
                        "--input-device and --output-device, or leave out --headless")
     if args.loopback and not args.headless:
         raise CliError("--loopback needs --headless (on hardware, connect a cable)")
+    _apply_picked(args)
     fs = args.samplerate
     main_in = _channel_list(args.main_inputs, "--main-inputs")
     key_in = _channel_list(args.key_inputs, "--key-inputs")
@@ -602,6 +603,61 @@ def _make_test(cls, err, option, fs, channels, spec):
         return cls(fs, channels, spec)
     except err as e:
         raise CliError(f"{option} {spec}: {e}") from None
+
+
+def _apply_picked(args):
+    """--picked: the devices and channels ``livedyn pick`` remembered (options given on the
+    command line win)."""
+    if not getattr(args, "picked", False):
+        return
+    from .console.picker import config_path, load_choice
+
+    c = load_choice()
+    if c is None:
+        raise CliError(f"--picked: no device choice in {config_path()} yet; run livedyn pick "
+                       "first")
+    if not args.headless and not args.device:
+        args.input_device = args.input_device or c.input_device
+        args.output_device = args.output_device or c.output_device
+    args.main_inputs = args.main_inputs or ",".join(map(str, c.main_inputs))
+    if c.key_inputs and not args.key_inputs:
+        args.key_inputs = ",".join(map(str, c.key_inputs))
+    devs = "" if args.headless or args.device else \
+        f"input {args.input_device!r}, output {args.output_device!r}, "
+    print(f"--picked: {devs}main inputs {args.main_inputs}, key inputs "
+          f"{args.key_inputs or 'none'} (from {config_path()})", flush=True)
+
+
+def cmd_pick(args):
+    from .console.picker import (PickerError, PickerModel, build_picker_app, config_path,
+                                 load_choice, save_choice)
+    from .engine import stream as st
+
+    server = None
+    if args.headless:
+        from .engine.jackserver import JackServer
+
+        server = JackServer(int(args.samplerate), 64, capture=args.channels,
+                            playback=2).start()
+        st.reinitialise()
+    try:
+        try:
+            remembered = load_choice()
+        except PickerError as e:
+            print(f"(ignoring the remembered choice: {e})")
+            remembered = None
+        model = PickerModel(st.list_devices(), remembered)
+        build_picker_app(model).run()
+        if model.choice is None:
+            print("nothing saved")
+            return 0
+        path = save_choice(model.choice)
+        print(f"saved to {path}: livedyn run --picked uses {model.choice.run_options()}")
+        return 0
+    finally:
+        st.terminate()
+        if server is not None:
+            server.stop()
 
 
 def _has_key(setup):
@@ -814,6 +870,8 @@ def build_parser():
                          "bursts[:HZ[:HIGH[:LOW[:ON_MS[:OFF_MS]]]]] (never above -6 dBFS)")
     rn.add_argument("--test-key", metavar="KIND[:ARGS]",
                     help="a built-in test signal as the key input (same kinds)")
+    rn.add_argument("--picked", action="store_true",
+                    help="use the devices and channels chosen with livedyn pick")
     rn.add_argument("--key-demo", action="store_true",
                     help="the rehearsal demo: the narrator ducks the music bed")
     rn.add_argument("--loop", action="store_true", help="loop file and demo inputs")
@@ -901,6 +959,17 @@ def build_parser():
 
     dv = sub.add_parser("devices", help="list audio devices", description="List audio devices.")
     dv.set_defaults(func=cmd_devices)
+
+    pk = sub.add_parser("pick", help="choose devices and main/key channels with a meter each",
+                        description="Choose the input and output devices and the main and key "
+                                    "input channels, with a meter per input channel; the choice "
+                                    "is remembered for livedyn run --picked.")
+    pk.add_argument("--headless", action="store_true",
+                    help="pick on a JACK server of its own (dummy backend)")
+    pk.add_argument("--channels", type=int, default=4, metavar="N",
+                    help="headless: capture channels of the server (default 4)")
+    pk.add_argument("--samplerate", type=float, default=48000.0)
+    pk.set_defaults(func=cmd_pick)
 
     ps = sub.add_parser("presets", help="list the shipped presets",
                         description="List the shipped presets.")
