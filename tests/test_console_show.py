@@ -72,9 +72,20 @@ def test_learn_from_the_console_maps_a_control_and_shows_it():
         midi.feed([0xB0, 74, 30])
         controls.flush()
 
-    app, _, screens = drive(e, ["L", move_knob, lambda a, c: None, ":quit\r"], model=m)
+    def turn_knob(app, cur):  # past the value (soft takeover), to a value with decimals
+        midi.feed([0xB0, 74, 100])
+        midi.feed([0xB0, 74, 90])
+        controls.flush()
+        controls.take_for_console()  # (the console's tick reads them too)
+        m.slots[m.active]["threshold"] = e.get("threshold")
+
+    app, _, screens = drive(e, ["L", move_knob, lambda a, c: None, turn_knob, "", ":quit\r"],
+                            model=m)
     assert midi.label("threshold") == "cc74/1"
+    assert e.get("threshold") == pytest.approx(-80 + 80 * 90 / 127)
     assert any("cc74" in s for s in screens)  # beside the parameter
+    # a long value (-23.3071 dBFS) at 80x24 still has its label beside it
+    assert any(">threshold" in s and "-23.3071 ~cc74/1" in s for s in screens), screens[-2]
     assert any("now drives threshold" in t for _, _, t, _ in m.log.entries)
 
 

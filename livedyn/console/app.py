@@ -9,6 +9,9 @@ from __future__ import annotations
 
 import asyncio
 import functools
+import os
+import sys
+from pathlib import Path
 
 from prompt_toolkit.application import Application
 from prompt_toolkit.application.current import set_app
@@ -263,8 +266,58 @@ def run_console(engine, title="livedyn console", check=None, quit_after=None, re
     Returns the model (its state at quit)."""
     app = build_app(engine, title=title, check=check, quit_after=quit_after,
                     refresh_hz=refresh_hz, controls=controls)
-    app.run()
+    with _stderr_to_file() as where:
+        app.run()
+    if where is not None and where[1] < _size(where[0]):
+        print(f"(messages from libraries while the console ran are in {where[0]})")
     return app.console_model
+
+
+def _size(path):
+    try:
+        return os.path.getsize(path)
+    except OSError:
+        return 0
+
+
+class _stderr_to_file:
+    """While the console runs, what C libraries write to file descriptor 2 (the ALSA library
+    when a MIDI port list asks for its sequencer, JACK about its server) goes to
+    ``$XDG_STATE_HOME/livedyn/console-stderr.log`` instead of over the screen. Yields
+    ``(path, size before)``, or None when it could not be set up (nothing is redirected)."""
+
+    def __enter__(self):
+        self.saved = None
+        xdg = os.environ.get("XDG_STATE_HOME", "")
+        base = Path(xdg) if xdg and Path(xdg).is_absolute() else \
+            Path.home() / ".local" / "state"
+        path = base / "livedyn" / "console-stderr.log"
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o644)
+        except OSError:
+            return None
+        before = _size(path)
+        try:
+            sys.stderr.flush()
+            self.saved = os.dup(2)
+            os.dup2(fd, 2)
+        except OSError:
+            self.saved = None
+            return None
+        finally:
+            os.close(fd)
+        return (path, before)
+
+    def __exit__(self, *exc):
+        if self.saved is not None:
+            try:
+                sys.stderr.flush()
+            except Exception:
+                pass
+            os.dup2(self.saved, 2)
+            os.close(self.saved)
+        return False
 
 
 def screen_to_text(screen, columns, rows) -> str:

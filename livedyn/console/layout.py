@@ -160,9 +160,18 @@ def draw_params(m, width, height):
         diff = "*" if m.differs(n) else (more or " ")
         learned = m.mapping_label(n)
         name_w = PARAM_NAME_W
-        if learned:  # the MIDI control beside the name, e.g. "threshold~cc21"
-            val = f"{val} ~{learned}" if len(val) + len(learned) + 2 <= val_w else val
-        text = f"{mark}{n:<{name_w}} {val:>{val_w}} {diff}"
+        shown = n
+        if learned:  # the MIDI control beside the name ("threshold~cc21/1") or the value
+            bare = val.rsplit(" ", 1)[0]  # the value without its unit
+            if len(val) + len(learned) + 2 <= val_w:
+                val = f"{val} ~{learned}"
+            elif len(n) + 1 + len(learned) <= name_w:
+                shown = f"{n}~{learned}"
+            elif len(bare) + len(learned) + 2 <= val_w:
+                val = f"{bare} ~{learned}"
+            else:  # no room for the whole label: a mark that one is mapped
+                shown = f"{n[:name_w - 1]}~"
+        text = f"{mark}{shown:<{name_w}} {val:>{val_w}} {diff}"
         style = "class:param.sel" if sel else "class:param"
         lines.append(_fit([(style, text)], width, style))
     return lines
