@@ -34,6 +34,17 @@ def test_ctrl_c_asks_like_q():
     assert app.console_model.quit_requested
 
 
+def test_a_stray_key_says_no_so_a_later_q_asks_again():
+    e = FakeEngine()
+    m = ConsoleModel(e)
+    asked = []
+    app, _, _ = drive(e, ["\x03", "x", lambda a, c: asked.append(m.question), "q",
+                          lambda a, c: asked.append(m.question), "q"], model=m)
+    assert asked[0] is None and asked[1] is not None  # x said no; the next q asked again
+    assert any("not quitting" in t for _, _, t, _ in m.log.entries)
+    assert m.quit_requested
+
+
 @pytest.mark.parametrize("size", [(24, 80), (40, 120)])
 def test_a_long_message_is_whole_on_screen_and_in_the_log(size):
     e = FakeEngine()

@@ -160,6 +160,10 @@ class Actions:
             self.model.info("learn cancelled")
 
     @_guarded
+    def say_no(self):
+        """Any other key while a question waits: the guard has answered no."""
+
+    @_guarded
     def answer(self, yes):
         if not self.model.answer(yes):
             self.model.info("no question is waiting for an answer")

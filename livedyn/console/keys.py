@@ -42,6 +42,10 @@ def build_keys(actions, model) -> KeyBindings:
     kb.add("y", filter=on_list)(lambda e: actions.answer(True))
     kb.add("?", filter=on_list)(lambda e: actions.open_help())
     kb.add("q", filter=on_list)(lambda e: actions.quit())
+    # while a question waits, a key with no binding of its own says no too (a stray key must
+    # not leave the question armed for a later q)
+    asked = Condition(lambda: model.question is not None)
+    kb.add("<any>", filter=on_list & asked)(lambda e: actions.say_no())
 
     # ---- the command line ------------------------------------------------------------------
     kb.add("enter", filter=on_cmd)(lambda e: actions.submit())
