@@ -337,6 +337,77 @@ def _channel_list(text, what):
     return chans
 
 
+#: Output level a live run starts at, dB (a choice of ours for hearing: 12 dB below unity,
+#: common practice of starting a monitor low, no source).
+DEFAULT_OUTPUT_LEVEL_DB = -12.0
+
+
+def _osc_options(args):
+    """Check --osc, --osc-bind and --osc-allow before anything opens: ``(bind, networks,
+    warning)`` or None without --osc."""
+    if args.osc is None:
+        if args.osc_bind or args.osc_allow:
+            raise CliError("--osc-bind and --osc-allow need --osc [PORT]")
+        return None
+    from .control.osc import OscError, check_bind
+
+    if not 0 <= args.osc <= 65535:
+        raise CliError(f"--osc {args.osc}: expected a UDP port 1 to 65535 (0: any free port)")
+    try:
+        return check_bind(args.osc_bind or "127.0.0.1", args.osc_allow)
+    except OscError as e:
+        raise CliError(str(e)) from None
+
+
+def _start_controls(eng, args, osc=None):
+    """The remote controls a run asked for (None when none): MIDI from --midi, OSC from
+    --osc (``osc`` from :func:`_osc_options`)."""
+    if not args.midi and osc is None:
+        return None
+    from .control.hub import Controls
+    from .control.midi import MidiControl, MidiError, load_mappings, open_port
+
+    controls = Controls(eng)
+    if args.midi:
+        try:
+            mappings = load_mappings(args.midi_map) if args.midi_map else []
+            for m in mappings:
+                controls.check_target(m.target)
+            port, name = open_port(args.midi)
+        except MidiError as e:
+            raise CliError(str(e)) from None
+        MidiControl(controls, port, mappings, name).start()
+        print(f"MIDI: reading {name} ({len(mappings)} mappings)", flush=True)
+    if osc is not None:
+        from .control.osc import OscControl, OscError
+
+        bind, nets, warning = osc
+        try:
+            o = OscControl(controls, args.osc, bind=bind, allow=nets)
+        except OscError as e:
+            controls.stop()
+            raise CliError(str(e)) from None
+        if warning:
+            print(f"Warning: {warning}", flush=True)
+        print(o.describe(), flush=True)
+        o.start()
+    return controls.start()
+
+
+def _print_midi_ports():
+    try:
+        from .control.midi import list_ports
+
+        ports = list_ports()
+    except Exception as e:  # MIDI is optional to the audio listing
+        print(f"MIDI inputs: unavailable ({str(e).splitlines()[0]})")
+        return
+    if not ports:
+        print("MIDI inputs: none (no JACK server or ALSA sequencer answers)")
+    for i, p in enumerate(ports):
+        print(f"MIDI input {i}: {p['api']}: {p['name']}  (--midi {i})")
+
+
 def cmd_devices(args):
     from .engine.stream import DeviceError, list_devices
 
@@ -352,6 +423,7 @@ def cmd_devices(args):
     for d in devs:
         print(f"{d['index']:>3}  {d['name'][:32]:32} {d['hostapi'][:28]:28} {d['inputs']:>3} "
               f"{d['outputs']:>4} {d['samplerate']:>8.0f}")
+    _print_midi_ports()
     return 0
 
 
@@ -393,7 +465,7 @@ def _run_with_status_lines(eng, server, main_src, args, seconds):
     return None
 
 
-def _run_with_console(eng, server, main_src, args, seconds):
+def _run_with_console(eng, server, main_src, args, seconds, controls=None):
     """The full-screen console until the user quits (or the time is up)."""
     from .console import run_console
 
@@ -404,11 +476,20 @@ def _run_with_console(eng, server, main_src, args, seconds):
             return "the input has played to its end"
         return None
 
+    own = controls is None  # the console's midi command needs the remote-control hub
+    if own:
+        from .control.hub import Controls
+
+        controls = Controls(eng).start()
     try:
         run_console(eng, title="livedyn run" + (" (headless)" if server else ""),
-                    check=check, quit_after=seconds, refresh_hz=args.ui_refresh)
+                    check=check, quit_after=seconds, refresh_hz=args.ui_refresh,
+                    controls=controls)
     except KeyboardInterrupt:
         pass
+    finally:
+        if own:
+            controls.stop()
     if server is not None and not server.alive():
         return f"the JACK server {server.name} stopped while the stream ran (killed or crashed)"
     return eng.error
@@ -442,11 +523,13 @@ def _cmd_run(args):
                        "--input-device and --output-device, or leave out --headless")
     if args.loopback and not args.headless:
         raise CliError("--loopback needs --headless (on hardware, connect a cable)")
+    _apply_picked(args)
     fs = args.samplerate
     main_in = _channel_list(args.main_inputs, "--main-inputs")
     key_in = _channel_list(args.key_inputs, "--key-inputs")
     outs = _channel_list(args.outputs, "--outputs")
     setup = _setup_from(args)
+    osc = _osc_options(args)
     main_src = key_src = None
     seconds = args.seconds
     interactive = not args.no_ui and sys.stdin.isatty() and sys.stdout.isatty()
@@ -472,13 +555,18 @@ def _cmd_run(args):
         # the scene's music alone: this algorithm has no key input for the narrator
         print("(--key-demo: the algorithm has no key input; playing the scene's music only)")
         key_src, kch = None, 0
+    main_src, key_src, ch, kch = _test_sources(args, fs, main_src, key_src, ch, kch)
     proc = build_processor(setup, fs, ch, kch)
     if args.watch and proc.algorithm.source is None:
         raise CliError(f"--watch: {proc.algorithm.name} is built in; --watch reloads an "
                        "algorithm file (--algorithm FILE.py)")
     _print_report(proc.algorithm)
-    if args.headless and seconds is None and main_src is None:
-        seconds = 10.0
+    from .params import OUTPUT_LEVEL, ParamError
+
+    try:
+        out_level = OUTPUT_LEVEL.parse(args.output_level)
+    except ParamError as e:
+        raise CliError(f"--output-level {args.output_level}: {e}") from None
 
     server = None
     if args.headless:
@@ -497,7 +585,8 @@ def _cmd_run(args):
                      input_device=args.input_device, output_device=args.output_device,
                      main_inputs=main_in, key_inputs=key_in, outputs=outs, main_source=main_src,
                      key_source=key_src, record_dir=args.record, monitor=args.monitor,
-                     realtime=not args.no_realtime)
+                     realtime=not args.no_realtime,
+                     output_level_db=out_level)
         print(f"{proc.algorithm.name}: " +
               ", ".join(f"{k} {v}" for k, v in proc.describe().items()))
         print(f"latency: processor {proc.latency_samples} samples", end="")
@@ -526,10 +615,15 @@ def _cmd_run(args):
         watcher = FileWatcher(eng, proc.algorithm.source).start()
         print(f"watching {proc.algorithm.source}: save it to hear the new version", flush=True)
     failure = None
+    controls = _start_controls(eng, args, osc)
+    if seconds is None and (main_src is None or args.loop or main_src.kind != "input"):
+        print("runs until you stop it (q in the console, Ctrl+C otherwise)", flush=True)
     if not args.no_ui and sys.stdin.isatty() and sys.stdout.isatty():
-        failure = _run_with_console(eng, server, main_src, args, seconds)
+        failure = _run_with_console(eng, server, main_src, args, seconds, controls)
     else:
         failure = _run_with_status_lines(eng, server, main_src, args, seconds)
+    if controls is not None:
+        controls.stop()
     if watcher is not None:
         watcher.stop()
     snap = eng.snapshot()
@@ -560,6 +654,99 @@ def _cmd_run(args):
           f"{100 * snap['callback_load']['p99_9']:.1f} % of the block period"
           + (f"; recorded to {args.record}/" if args.record else ""))
     return 0
+
+
+def _test_sources(args, fs, main_src, key_src, ch, kch):
+    """--test-main / --test-key: a built-in test source as the main or key input; a file or
+    demo input is wrapped in one too, so that the console's ``source`` command can switch to a
+    test signal and back (``source main input``)."""
+    from .control.sources import SourceError, TestSource
+
+    if args.test_main:
+        if args.input_file:
+            raise CliError(f"--test-main {args.test_main}: leave out --input-file (the main "
+                           "input is one or the other)")
+        if main_src is not None and hasattr(main_src, "close"):
+            main_src.close()
+        ch = len(_channel_list(args.main_inputs, "--main-inputs") or [1, 2])
+        main_src = _make_test(TestSource, SourceError, "--test-main", fs, ch, args.test_main)
+    elif main_src is not None:
+        main_src = TestSource(fs, main_src.channels, inner=main_src)
+    if args.test_key:
+        if args.key_file:
+            raise CliError(f"--test-key {args.test_key}: leave out --key-file (the key "
+                           "input is one or the other)")
+        kch = len(_channel_list(args.key_inputs, "--key-inputs") or [1])
+        key_src = _make_test(TestSource, SourceError, "--test-key", fs, kch, args.test_key)
+    elif key_src is not None:
+        key_src = TestSource(fs, key_src.channels, inner=key_src)
+    for what, src in (("main", main_src), ("key", key_src)):
+        if src is not None and src.kind != "input":
+            print(f"test source as the {what} input: {src.description} (never above "
+                  "-6 dBFS)", flush=True)
+    return main_src, key_src, ch, kch
+
+
+def _make_test(cls, err, option, fs, channels, spec):
+    try:
+        return cls(fs, channels, spec)
+    except err as e:
+        raise CliError(f"{option} {spec}: {e}") from None
+
+
+def _apply_picked(args):
+    """--picked: the devices and channels ``livedyn pick`` remembered (options given on the
+    command line win)."""
+    if not getattr(args, "picked", False):
+        return
+    from .console.picker import config_path, load_choice
+
+    c = load_choice()
+    if c is None:
+        raise CliError(f"--picked: no device choice in {config_path()} yet; run livedyn pick "
+                       "first")
+    if not args.headless and not args.device:
+        args.input_device = args.input_device or c.input_device
+        args.output_device = args.output_device or c.output_device
+    args.main_inputs = args.main_inputs or ",".join(map(str, c.main_inputs))
+    if c.key_inputs and not args.key_inputs:
+        args.key_inputs = ",".join(map(str, c.key_inputs))
+    devs = "" if args.headless or args.device else \
+        f"input {args.input_device!r}, output {args.output_device!r}, "
+    print(f"--picked: {devs}main inputs {args.main_inputs}, key inputs "
+          f"{args.key_inputs or 'none'} (from {config_path()})", flush=True)
+
+
+def cmd_pick(args):
+    from .console.picker import (PickerError, PickerModel, build_picker_app, config_path,
+                                 load_choice, save_choice)
+    from .engine import stream as st
+
+    server = None
+    if args.headless:
+        from .engine.jackserver import JackServer
+
+        server = JackServer(int(args.samplerate), 64, capture=args.channels,
+                            playback=2).start()
+        st.reinitialise()
+    try:
+        try:
+            remembered = load_choice()
+        except PickerError as e:
+            print(f"(ignoring the remembered choice: {e})")
+            remembered = None
+        model = PickerModel(st.list_devices(), remembered)
+        build_picker_app(model).run()
+        if model.choice is None:
+            print("nothing saved")
+            return 0
+        path = save_choice(model.choice)
+        print(f"saved to {path}: livedyn run --picked uses {model.choice.run_options()}")
+        return 0
+    finally:
+        st.terminate()
+        if server is not None:
+            server.stop()
 
 
 def _has_key(setup):
@@ -791,6 +978,14 @@ def build_parser():
     rn.add_argument("--outputs", metavar="1,2", help="device channels that carry the output")
     rn.add_argument("--input-file", metavar="F", help="play a WAV file as the main input")
     rn.add_argument("--key-file", metavar="F", help="play a WAV file as the key input")
+    rn.add_argument("--test-main", metavar="KIND[:ARGS]",
+                    help="a built-in test signal as the main input: tone[:HZ[:DBFS]], "
+                         "pink[:DBFS], white[:DBFS], sweep[:F1[:F2[:SECONDS[:DBFS]]]], "
+                         "bursts[:HZ[:HIGH[:LOW[:ON_MS[:OFF_MS]]]]] (never above -6 dBFS)")
+    rn.add_argument("--test-key", metavar="KIND[:ARGS]",
+                    help="a built-in test signal as the key input (same kinds)")
+    rn.add_argument("--picked", action="store_true",
+                    help="use the devices and channels chosen with livedyn pick")
     rn.add_argument("--key-demo", action="store_true",
                     help="the rehearsal demo: the narrator ducks the music bed")
     rn.add_argument("--loop", action="store_true", help="loop file and demo inputs")
@@ -800,6 +995,25 @@ def build_parser():
     rn.add_argument("--stats-json", metavar="FILE", help="write the run's statistics here")
     rn.add_argument("--monitor", choices=["out", "key", "delta"], default="out",
                     help="what the outputs carry: processed, filtered key, or what was removed")
+    rn.add_argument("--output-level", default=str(DEFAULT_OUTPUT_LEVEL_DB), metavar="DB",
+                    help="level of the device outputs in dB, -60 to 0 or off (default "
+                         f"{DEFAULT_OUTPUT_LEVEL_DB:g}: start low and raise it; meters and "
+                         "recordings are taken before it)")
+    rn.add_argument("--midi", metavar="PORT",
+                    help="read MIDI control from this input port (index, name or a unique part "
+                         "of it; livedyn devices lists them)")
+    rn.add_argument("--midi-map", metavar="FILE", help="MIDI mappings to start with (TOML)")
+    from .control.osc import DEFAULT_PORT as OSC_PORT
+
+    rn.add_argument("--osc", type=int, nargs="?", const=OSC_PORT, metavar="PORT",
+                    help=f"take OSC control on this UDP port (default {OSC_PORT}; on 127.0.0.1 "
+                         "only unless --osc-bind)")
+    rn.add_argument("--osc-bind", metavar="ADDRESS",
+                    help="listen for OSC on this IPv4 address instead of 127.0.0.1 (0.0.0.0: "
+                         "every interface); needs --osc-allow")
+    rn.add_argument("--osc-allow", metavar="NET,...",
+                    help="senders OSC accepts: addresses or networks (192.168.1.20, "
+                         "192.168.1.0/24), comma-separated; default 127.0.0.0/8")
     rn.add_argument("--no-ui", action="store_true",
                     help="no console: print one status line a second (also when not on a "
                          "terminal)")
@@ -879,6 +1093,16 @@ def build_parser():
     rd.add_argument("--json", metavar="FILE",
                     help="also write the report as JSON ('-': JSON only, on stdout)")
     rd.set_defaults(func=cmd_ready)
+    pk = sub.add_parser("pick", help="choose devices and main/key channels with a meter each",
+                        description="Choose the input and output devices and the main and key "
+                                    "input channels, with a meter per input channel; the choice "
+                                    "is remembered for livedyn run --picked.")
+    pk.add_argument("--headless", action="store_true",
+                    help="pick on a JACK server of its own (dummy backend)")
+    pk.add_argument("--channels", type=int, default=4, metavar="N",
+                    help="headless: capture channels of the server (default 4)")
+    pk.add_argument("--samplerate", type=float, default=48000.0)
+    pk.set_defaults(func=cmd_pick)
 
     ps = sub.add_parser("presets", help="list the shipped presets",
                         description="List the shipped presets.")

@@ -48,7 +48,7 @@ P_KEY = 22
 P_HYSTERESIS = 23
 P_TRUE_PEAK = 24
 P_SAMPLERATE = 25  # written by the Processor, not a user control
-P_BYPASS = 26  # reserved for the engine
+P_OUTPUT_LEVEL = 26  # the live engine's output (monitor) level, dB; not part of any algorithm
 P_LAW = 27  # gain law of the dynamics kernel, written by the Processor
 P_USER_CURVE = 28  # address of a user gain curve (a compiled cfunc), written by the Processor
 P_USER_DETECTOR = 29  # address of a user level detector (0: the built-in peak/rms measure)
@@ -334,6 +334,16 @@ def feedback_problem(ratio, attack_ms, release_ms, samplerate):
                 f"{format_number(ratio)}: the loop rings, expected attack or release above "
                 f"{need:.3g} ms at {samplerate:g} Hz")
     return None
+
+
+#: The live engine's output (monitor) level: the last gain before the device outputs, after
+#: the recordings and meters tap the signal; attenuation only, so the safety ceiling still holds.
+#: Not a parameter of any algorithm (presets, slots and automation files do not carry it).
+OUTPUT_LEVEL = _p("output_level", P_OUTPUT_LEVEL, "dB", -60, 0, 0, "linear", "sample",
+                  "level of the device outputs (monitor level), after meters and recordings; "
+                  "off = silent", off_value=-math.inf)
+#: Below this the output level is silence (the fader's bottom, 'off').
+OUTPUT_LEVEL_OFF_DB = -60.0
 
 
 def ratio_to_slope(ratio: float) -> float:

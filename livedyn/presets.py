@@ -59,6 +59,8 @@ __all__ = [
     "dumps",
     "list_presets",
     "presets_dir",
+    "user_presets_dir",
+    "user_preset_path",
     "write_text_atomic",
     "read_text_file",
 ]
@@ -146,6 +148,46 @@ def presets_dir() -> Path:
     return Path(__file__).resolve().parent.parent / "presets"
 
 
+#: Environment variable that points at another folder of the user's own presets.
+ENV_USER_DIR = "LIVEDYN_USER_PRESETS"
+
+
+def user_presets_dir() -> Path:
+    """The folder of the user's own presets: ``$LIVEDYN_USER_PRESETS``, else
+    ``$XDG_DATA_HOME/livedyn/presets`` (``~/.local/share/livedyn/presets`` when
+    ``XDG_DATA_HOME`` is unset or not absolute, per the XDG Base Directory Specification 0.8).
+    It may not exist yet: :func:`user_preset_path` makes it."""
+    env = os.environ.get(ENV_USER_DIR)
+    if env:
+        return Path(env).expanduser()
+    xdg = os.environ.get("XDG_DATA_HOME", "")
+    base = Path(xdg) if xdg and Path(xdg).is_absolute() else Path.home() / ".local" / "share"
+    return base / "livedyn" / "presets"
+
+
+def user_preset_path(name: str, make=True) -> Path:
+    """Where ``save NAME`` writes the preset ``name``: ``NAME.toml`` in the user folder (made
+    with its parents when ``make``). ``name`` must be a bare name: no folder, no suffix."""
+    if not _is_bare_name(name):
+        raise PresetError(f"{name!r}: expected a bare preset name (no folder, no suffix)")
+    folder = user_presets_dir()
+    if make:
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+        except OSError as e:
+            raise PresetError(f"{folder}: cannot make the user presets folder: "
+                              f"{e.strerror or e}") from None
+    return folder / (name + SUFFIX)
+
+
+def is_shipped(path) -> bool:
+    """True when ``path`` lies in the shipped presets folder (read-only to livedyn)."""
+    try:
+        return Path(path).resolve().parent == presets_dir().resolve()
+    except OSError:
+        return False
+
+
 def _is_bare_name(x) -> bool:
     if not isinstance(x, str):
         return False
@@ -155,16 +197,18 @@ def _is_bare_name(x) -> bool:
 
 
 def _resolve(path_or_name) -> Path:
-    if _is_bare_name(path_or_name):
-        folder = presets_dir()
-        p = folder / (path_or_name + SUFFIX)
-        if not p.exists():
-            have = sorted(q.stem for q in folder.glob("*" + SUFFIX)) if folder.is_dir() else []
-            raise PresetError(
-                f"{p}: no preset named {path_or_name!r} in {folder}, expected one of "
-                f"{', '.join(have) if have else '(none: the folder has no presets)'}"
-            )
-        return p
+    if _is_bare_name(path_or_name):  # the user's own first, then the shipped ones
+        folders = [user_presets_dir(), presets_dir()]
+        for folder in folders:
+            p = folder / (path_or_name + SUFFIX)
+            if p.exists():
+                return p
+        have = sorted({q.stem for f in folders if f.is_dir() for q in f.glob("*" + SUFFIX)})
+        p = folders[-1] / (path_or_name + SUFFIX)
+        raise PresetError(
+            f"{p}: no preset named {path_or_name!r} in {folders[0]} or {folders[1]}, expected "
+            f"one of {', '.join(have) if have else '(none: the folders have no presets)'}"
+        )
     if isinstance(path_or_name, (str, os.PathLike)):
         return Path(path_or_name)
     raise PresetError(f"{path_or_name!r}: expected a preset name or a path to a preset file")
@@ -337,7 +381,7 @@ def load(path_or_name) -> Preset:
     ----------
     path_or_name : str or os.PathLike
         A bare name (no folder, no suffix, e.g. ``"vocal"``) is looked up as ``NAME.toml`` in
-        :func:`presets_dir`; anything else is read as a path.
+        :func:`user_presets_dir`, then in :func:`presets_dir`; anything else is read as a path.
 
     Returns
     -------
@@ -577,7 +621,8 @@ def save(preset: Preset, path) -> Path:
 
 
 def list_presets(folder=None, on_error=None) -> list:
-    """The presets in ``folder`` (default :func:`presets_dir`), sorted by name.
+    """The presets in ``folder`` (default: the user's own folder and the shipped one, a user
+    preset hiding a shipped one of the same name), sorted by name.
 
     Returns
     -------
@@ -586,10 +631,15 @@ def list_presets(folder=None, on_error=None) -> list:
     A file that does not load is skipped; its one-line error goes to ``on_error(message)``
     (default: a :class:`PresetWarning`). A missing folder gives an empty list.
     """
-    folder = Path(folder) if folder is not None else presets_dir()
     if on_error is None:
         def on_error(msg):
             warnings.warn(msg, PresetWarning, stacklevel=3)
+    if folder is None:  # the user's own, then the shipped ones they do not shadow
+        out = list_presets(user_presets_dir(), on_error)
+        mine = {n for n, _, _ in out}
+        return sorted(out + [e for e in list_presets(presets_dir(), on_error)
+                             if e[0] not in mine])
+    folder = Path(folder)
     out = []
     if not folder.is_dir():
         return out

@@ -101,6 +101,16 @@ def terminate_portaudio():
         sd._terminate()
 
 
+@pytest.fixture(autouse=True)
+def _user_folders(tmp_path_factory, monkeypatch):
+    """Every test gets empty user folders of its own (presets, configuration), never the
+    home folder of whoever runs the tests."""
+    home = tmp_path_factory.mktemp("user")
+    monkeypatch.setenv("LIVEDYN_USER_PRESETS", str(home / "presets"))
+    monkeypatch.setenv("XDG_CONFIG_HOME", str(home / "config"))
+    monkeypatch.setenv("XDG_DATA_HOME", str(home / "data"))
+
+
 @pytest.fixture
 def jack_server(request):
     """A started JackServer (realtime asked for by default) with PortAudio re-initialised."""

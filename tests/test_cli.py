@@ -184,7 +184,16 @@ def test_trace_folder_must_not_replace_the_input(work, capsys):
 @pytest.mark.parametrize("argv", [["demo", "--seconds", "0"], ["demo", "--seconds", "-1"],
                                   ["measure", "latency", "--samplerate", "1000"],
                                   ["measure", "curve", "--json", "{d}/nowhere/c.json"],
-                                  ["presets", "--show", "no-such-preset"]])
+                                  ["presets", "--show", "no-such-preset"],
+                                  # OSC beyond this machine needs an allow list; checked
+                                  # before anything starts or listens
+                                  ["run", "--no-ui", "--osc", "--osc-bind", "0.0.0.0"],
+                                  ["run", "--no-ui", "--osc-allow", "10.0.0.0/8"],
+                                  ["run", "--no-ui", "--osc", "70000"],
+                                  ["run", "--no-ui", "--osc", "--osc-allow", "10.0.0.300"],
+                                  # test sources: above the -6 dBFS cap, unknown kind
+                                  ["run", "--no-ui", "--test-main", "tone:1000:0"],
+                                  ["run", "--no-ui", "--test-key", "hum"]])
 def test_other_commands_one_line_errors(argv, tmp_path, capsys):
     argv = [a.format(d=tmp_path) for a in argv]
     if argv[0] == "demo":

@@ -26,7 +26,7 @@ from livedyn.console import commands as cmds
 from livedyn.console.model import (
     COARSE_FACTOR, FINE_FACTOR, LOG_FLOOR, RATIO_TOP, ConsoleModel, step_value,
 )
-from livedyn.params import ALL, ParamError
+from livedyn.params import ALL, OUTPUT_LEVEL, ParamError
 
 FS = 48000
 
@@ -55,13 +55,20 @@ class FakeEngine:
                            "rms_dbfs": [-20.0] * channels} for w in ("in", "out")},
         }
 
+    output_level = 0.0  # dB, the engine's own control (livedyn.params.OUTPUT_LEVEL)
+
     def set(self, name, value):
-        self.proc.set(name, value)
+        if name == OUTPUT_LEVEL.name:
+            self.output_level = OUTPUT_LEVEL.parse(value)
+        else:
+            self.proc.set(name, value)
         self.calls.append((name, value))
         self.seq += 1
         return self.seq
 
     def get(self, name):
+        if name == OUTPUT_LEVEL.name:
+            return self.output_level
         return self.proc.get(name)
 
     def wait_applied(self, seq, timeout=1.0):
@@ -455,6 +462,8 @@ def test_save_is_atomic_and_a_failed_save_keeps_the_old_file(tmp_path, monkeypat
 
     monkeypatch.setattr(os, "fsync", no_space)
     m.run_command(f"save {path}")
+    assert m.question is not None and "exists" in m.status.text  # replacing asks first
+    m.answer(True)
     monkeypatch.undo()
     assert_one_error_line(m, "first.toml", "No space left")
     assert path.read_bytes() == old
@@ -591,7 +600,7 @@ def test_screen_80x24_shows_parameters_meters_and_curve(pipe):
     for name in ("threshold", "ratio", "knee", "attack"):
         assert name in text
     assert "-20 dBFS" in text and "4:1" in text
-    for label in ("in  1", "in  2", "out 1", "out 2", "LUFS", "dBTP", "GR", "dsp", "late 3",
+    for label in ("in  1", "in  2", "out 1", "out 2", "LUFS", "dBTP", "GR", "load", "late 3",
                   "flagged 1", "lookahead"):
         assert label in text, label
     assert "-12.0" in text and "-18.2" in text  # peak and momentary loudness from the snapshot
@@ -753,7 +762,7 @@ def drive(engine, steps, size=(24, 80), model=None, timeout=20.0, **app_args):
 def test_keys_drive_the_console():
     e = FakeEngine()
     app, _, _ = drive(e, [RIGHT, S_RIGHT, DOWN, RIGHT, DOWN, LEFT, PGUP, PGDN, PGDN, UP, UP,
-                          "q"])
+                          "q", "q"])  # while sound plays, quitting asks: q again
     assert e.calls == [("threshold", -19.5), ("threshold", -16.5),
                        ("ratio", pytest.approx(4 * FINE_FACTOR, rel=5e-4)),
                        ("knee", 5.5), ("knee", 8.5), ("knee", 5.5), ("knee", 2.5)]
@@ -791,7 +800,7 @@ def test_escape_help_and_resize_redraw():
         return go
 
     steps = [":thr", "\x1b", "?", PGDN, "\x1b", resize(40, 120), resize(20, 60), resize(24, 80),
-             "q"]
+             "q", "q"]
     app, _, screens = drive(e, steps)
     assert e.calls == []  # Esc cancelled the typed command
     assert any("Monitoring cautions" in s for s in screens)
@@ -807,7 +816,7 @@ def test_meters_refresh_at_20_hz_or_more():
     from livedyn.console.app import REFRESH_HZ
 
     assert REFRESH_HZ >= 20
-    drive(e, [lambda app, cur: None] * 10 + ["q"])  # about 0.75 s of running
+    drive(e, [lambda app, cur: None] * 10 + ["q", "q"])  # about 0.75 s of running
     # at 25 Hz about 18 reads happen in that time; allow for a busy 2-core machine
     assert e.snapshots >= 10
 

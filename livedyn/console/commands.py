@@ -22,30 +22,52 @@ from ..params import format_number
 
 #: Verb -> (argument form, one-line meaning), in help order.
 VERBS = {
-    "load": ("NAME|FILE", "apply a shipped preset by name or a preset file (undo reverts it)"),
-    "save": ("FILE", "write the active slot's values as a preset file (atomic; .toml added "
-                     "if the name has no suffix)"),
+    "load": ("NAME|FILE", "apply a preset by name (your own, saved with 'save NAME', or a "
+                          "shipped one) or a preset file (undo reverts it)"),
+    "save": ("NAME|FILE", "write the active slot's values: a bare NAME goes to your presets "
+                          "folder, anything else is a file (.toml added); asks before "
+                          "replacing; shipped presets are never written"),
     "bypass": ("[on|off]", "pass the input through unprocessed (no argument: toggle)"),
     "mute": ("[on|off]", "silence every output (no argument: toggle)"),
     "monitor": ("out|key|delta", "what you hear: the output, the key input, or the delta "
                                  "(what the processor removes)"),
+    "output": ("DB|off", "output (monitor) level of the device outputs, -60 to 0 dB or off; "
+                         "meters and recordings are taken before it"),
     "slot": ("a|b", "switch to settings slot A or B (each keeps its own values and undo)"),
     "compare": ("", "switch to the other slot"),
     "match": ("[on|off]", "level-matched comparison: trim the louder slot by the loudness "
                           "difference ('match' alone: on, or measure again)"),
     "undo": ("", "put back the values before the last change on this slot"),
+    "redo": ("", "put back what the last undo took away"),
+    "algorithm": ("NAME|FILE", "change the running algorithm (built-in name or algorithm file), "
+                               "crossfaded in; shared parameters keep their values"),
+    "source": ("main|key KIND ...", "switch a test source: tone [HZ [DBFS]], pink [DBFS], "
+                                    "white [DBFS], sweep [F1 [F2 [SECONDS [DBFS]]]], bursts "
+                                    "[HZ [HIGH [LOW [ON_MS [OFF_MS]]]]], input (the run's own); "
+                                    "never above -6 dBFS"),
+    "reset": ("", "count late and flagged blocks from 0 again"),
+    "learn": ("[TARGET]", "MIDI learn: the next control you move drives TARGET (default the "
+                          "chosen parameter; also output_level, mute, bypass, slot, compare, "
+                          "'preset NAME')"),
+    "forget": ("[TARGET]", "remove the MIDI mappings of TARGET (default the chosen parameter)"),
+    "mappings": ("save|load FILE", "write or read the MIDI mappings (a TOML file)"),
+    "midi": ("[PORT|off]", "read MIDI from another input port (index, name or a unique part; "
+                           "the mappings stay); no argument: list the ports"),
+    "log": ("", "every message so far, with its time"),
     "help": ("", "show this help"),
-    "quit": ("", "leave the console (the engine keeps running until its owner stops it)"),
+    "quit": ("", "leave now, without the question q asks while sound plays (the engine stops "
+                 "when its owner stops it)"),
 }
 #: Words a verb accepts (None: free text such as a file name).
 VERB_WORDS = {
-    "load": None, "save": None,
+    "load": None, "save": None, "algorithm": None, "source": None, "mappings": None,
+    "learn": None, "forget": None, "output": None, "midi": None,
     "bypass": ("on", "off"), "mute": ("on", "off"), "match": ("on", "off"),
     "monitor": ("out", "key", "delta"), "slot": ("a", "b"),
-    "compare": (), "undo": (), "help": (), "quit": (),
+    "compare": (), "undo": (), "redo": (), "reset": (), "log": (), "help": (), "quit": (),
 }
 #: Verbs whose argument may be left out.
-OPTIONAL_ARG = {"bypass", "mute", "match"}
+OPTIONAL_ARG = {"bypass", "mute", "match", "learn", "forget", "midi"}
 
 
 class CommandError(ValueError):
@@ -149,6 +171,8 @@ def _verb_command(verb: str, rest: str) -> Command:
     form = VERBS[verb][0]
     words = VERB_WORDS[verb]
     if words is None:
+        if not rest and verb in OPTIONAL_ARG:
+            return Command(verb)
         if not rest:
             raise CommandError(f"{verb}: missing {form}, e.g. '{verb} {form.split('|')[0]}'")
         return Command(verb, rest)
@@ -289,17 +313,21 @@ def _finish(prefix: str, partial: str, cands, path=False) -> Completion:
 
 #: (keys, meaning) of the parameter list, in help order.
 LIST_KEYS = (
-    ("Up / Down", "choose a parameter"),
+    ("Up / Down", "choose a parameter (the list scrolls; n/N shows where you are)"),
     ("Left / Right", "small step down / up (follows the parameter's taper, see below)"),
     ("Shift+Left / Shift+Right, PgDn / PgUp", "large step down / up"),
     ("Enter", "type a value for the chosen parameter"),
     (":", "type a command"),
+    ("- / +", "output level down / up by 1 dB (below -60 dB: off)"),
     ("b", "bypass on/off"),
     ("m, or F2 anywhere", "mute on/off: silences every output"),
     ("c", "compare: switch between slots A and B"),
-    ("u", "undo the last change on this slot"),
+    ("u / r", "undo / redo the last change on this slot"),
+    ("L", "MIDI learn for the chosen parameter (then move a control)"),
+    ("l", "the message log (every message with its time)"),
+    ("y", "yes to a question in the message area (replace a preset, quit)"),
     ("?, or F1 anywhere", "this help (Esc, q or ? closes it; Up/Down/PgUp/PgDn scroll)"),
-    ("q, or Ctrl+C anywhere", "quit the console"),
+    ("q, or Ctrl+C anywhere", "quit; while sound plays it asks first: press it again"),
 )
 CMD_KEYS = (
     ("Enter", "run the command"),
@@ -370,10 +398,12 @@ def help_lines(schema, algorithm_name: str) -> list:
                 rng += " or off"
         out.append(f"  {p.name:<12} {rng}")
         out.append(f"  {'':<12}   {p.help}")
-    out += ["", "The meters: peak (bar, with a hold mark '|'), RMS, momentary (M, 400 ms) and "
-            "short-term (S, 3 s) loudness in LUFS and true peak in dBTP per ITU-R BS.1770-4 "
-            "and EBU R 128; GR is gain reduction; dsp is the callback's share of the block "
-            "period; late and flagged count blocks the stream was late for or reported as over- "
-            "or underrun; latency is the stream's input + output latency; lookahead is the "
-            "processor's own delay."]
+    out += ["", "The meters: peak (bar, with a hold mark '|'), RMS, momentary (400 ms) and "
+            "short-term (3 s) loudness in LUFS and true peak in dBTP per ITU-R BS.1770-4 "
+            "and EBU R 128; GR is gain reduction (it reads 'bypassed' while bypassed); load is "
+            "the callback's share of the block period; late and flagged count blocks the "
+            "stream was late for or reported as over- or underrun (reset sets them to 0); "
+            "latency is the stream's input and output latency; lookahead is the processor's "
+            "own delay. The output fader is the level of the device outputs, after the meters "
+            "and recordings."]
     return out

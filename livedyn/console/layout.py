@@ -5,8 +5,10 @@ of ``(style, text)`` fragments; :class:`DrawnControl` shows one in a prompt_tool
 redraws it at whatever size the window has (so a terminal resize simply redraws).
 
 Screen, top to bottom: the header (algorithm, slot, bypass/mute/monitor, level match), the
-parameter list beside the static curve, the meters, the gain-reduction strip, the status line
-and the command line. The help screen replaces the middle part while it is open.
+parameter list beside the static curve, the meters with the output fader, the gain-reduction
+strip, the message area (the latest message, wrapped, never cut) and the command line. The help
+screen and the message log replace the middle part while open. A window smaller than
+:data:`MIN_COLUMNS` x :data:`MIN_ROWS` shows a line saying so instead of the middle part.
 """
 from __future__ import annotations
 
@@ -22,12 +24,17 @@ from prompt_toolkit.layout.containers import ConditionalContainer
 from prompt_toolkit.layout.controls import BufferControl, FormattedTextControl, UIContent, UIControl
 from prompt_toolkit.layout.dimension import Dimension as D
 
+from ..params import OUTPUT_LEVEL
 from .model import FLOOR_DB, one_line
 
 METER_LO_DB = -60.0  # left end of the level bars, dBFS
 GR_FULL_DB = 24.0  # right end of the gain-reduction bar, dB
 STRIP_LEVELS = " ▁▂▃▄▅▆▇█"
 PARAM_NAME_W = 12
+#: Smallest window the console draws its panels in.
+MIN_COLUMNS, MIN_ROWS = 60, 18
+#: Lines the message area may take before it scrolls its start away (the log keeps it all).
+STATUS_MAX_ROWS = 4
 
 
 # ---------------------------------------------------------------------------------------------
@@ -129,7 +136,7 @@ def draw_header(m, width, height):
 def draw_params(m, width, height):
     lines = []
     marks = any(m.differs(n) for n in m.names)
-    head = f" parameters, slot {m.active.upper()}"
+    head = f" parameters {m.selected + 1}/{len(m.names)}, slot {m.active.upper()}"
     if marks:
         legend = f"  *: {m._other().upper()} differs"
         head += legend if len(head) + len(legend) <= width else " *"
@@ -151,7 +158,20 @@ def draw_params(m, width, height):
         elif i == len(names) - 1 and top + len(names) < len(m.names):
             more = "v"
         diff = "*" if m.differs(n) else (more or " ")
-        text = f"{mark}{n:<{PARAM_NAME_W}} {val:>{val_w}} {diff}"
+        learned = m.mapping_label(n)
+        name_w = PARAM_NAME_W
+        shown = n
+        if learned:  # the MIDI control beside the name ("threshold~cc21/1") or the value
+            bare = val.rsplit(" ", 1)[0]  # the value without its unit
+            if len(val) + len(learned) + 2 <= val_w:
+                val = f"{val} ~{learned}"
+            elif len(n) + 1 + len(learned) <= name_w:
+                shown = f"{n}~{learned}"
+            elif len(bare) + len(learned) + 2 <= val_w:
+                val = f"{bare} ~{learned}"
+            else:  # no room for the whole label: a mark that one is mapped
+                shown = f"{n[:name_w - 1]}~"
+        text = f"{mark}{shown:<{name_w}} {val:>{val_w}} {diff}"
         style = "class:param.sel" if sel else "class:param"
         lines.append(_fit([(style, text)], width, style))
     return lines
@@ -251,7 +271,7 @@ def draw_curve(m, width, height):
 
 
 def meter_line_count(m):
-    return 2 * (m.proc.channels + 1) + 2
+    return 2 * (m.proc.channels + 1) + 3
 
 
 def draw_meters(m, width, height):
@@ -278,8 +298,9 @@ def draw_meters(m, width, height):
         tp = _top(ms.get("true_peak_dbtp"))
         tpmax = ms.get("max_true_peak_dbtp")
         lines.append(_fit([("class:label", f"{way:<3}   "),
-                           ("class:value", f"M {_db(mom)}  S {_db(st)} LUFS   true peak "
-                                           f"{_db(tp)}  max {_db(tpmax)} dBTP")], width))
+                           ("class:value", f"momentary {_db(mom)}  short-term {_db(st)} LUFS  "
+                                           f"true peak {_db(tp)} max {_db(tpmax)} dBTP")],
+                          width))
     key = _top(snap.get("peak_key_dbfs"))
     gr = float(snap.get("gain_reduction_db", 0.0) or 0.0)
     half = max(6, (width - 40) // 2)
@@ -290,30 +311,47 @@ def draw_meters(m, width, height):
     else:
         frags.append(("class:dim", "(no key input)".ljust(half + 14)))
     frags.append(("class:label", "GR "))
-    frags += gr_bar(gr, half)
-    frags.append(("class:value", f" {gr:5.1f} dB"))
+    if m.bypassed:  # the processor's gain is not heard: say so rather than show it
+        frags += [("class:title.bypass", " bypassed ")]
+    else:
+        frags += gr_bar(gr, half)
+        frags.append(("class:value", f" {gr:5.1f} dB"))
     lines.append(_fit(frags, width))
     load = snap.get("callback_load") or {}
     lat = snap.get("stream_latency_s") or {}
     la = snap.get("lookahead_samples")
     fs = snap.get("samplerate") or m.samplerate
-    lat_txt = (f"{1000 * lat.get('input', 0.0):.1f}+{1000 * lat.get('output', 0.0):.1f} ms"
-               if lat else "--")
-    la_txt = f"{la} smp ({1000.0 * la / fs:.1f} ms)" if la is not None else "--"
-    text = (f"dsp {100 * load.get('median', 0.0):.1f} % (max {100 * load.get('max', 0.0):.0f} %)"
-            f"  late {snap.get('late_blocks', 0)}  flagged {snap.get('flagged_blocks', 0)}"
-            f"  latency {lat_txt}  lookahead {la_txt}")
+    lat_txt = (f"in {1000 * lat.get('input', 0.0):.1f} ms + out "
+               f"{1000 * lat.get('output', 0.0):.1f} ms" if lat else "--")
+    text = (f"load {100 * load.get('median', 0.0):.1f} % (max {100 * load.get('max', 0.0):.0f} %)"
+            f"  late {m.count('late_blocks')}  flagged {m.count('flagged_blocks')}"
+            f"  latency {lat_txt}")
     rt = snap.get("realtime") or {}
     if rt.get("policy") not in (None, "unknown"):  # what real time the callback was granted
         text += (f"  rt {rt['policy'].replace('SCHED_', '').lower()}"
                  + (f" {rt['priority']}" if rt.get("granted") else "")
                  + (" locked" if rt.get("memory_locked") else ""))
     if len(text) > width:
-        text = (f"dsp {100 * load.get('median', 0.0):.1f}% max {100 * load.get('max', 0.0):.0f}%"
-                f"  late {snap.get('late_blocks', 0)} flagged {snap.get('flagged_blocks', 0)}"
-                f"  lat {lat_txt}  lookahead {la} smp")
+        text = (f"load {100 * load.get('median', 0.0):.1f}% (max {100 * load.get('max', 0.0):.0f}%)"
+                f"  late {m.count('late_blocks')} flagged {m.count('flagged_blocks')}"
+                f"  latency {lat_txt}")
     lines.append(_fit([("class:value", text)], width))
+    lines.append(_fit(draw_fader(m, width, la, fs), width))
     return lines[:height]
+
+
+def draw_fader(m, width, la=None, fs=48000.0):
+    """The output level fader with its value, then the processor's lookahead."""
+    lv = m.output_level
+    la_txt = f"   lookahead {la} smp ({1000.0 * la / fs:.1f} ms)" if la is not None else ""
+    if lv is None:
+        return [("class:dim", "output level: (none)"), ("class:value", la_txt)]
+    bar_w = max(8, min(30, width - 46))
+    shown = OUTPUT_LEVEL.format(lv)
+    frags = [("class:label", "output level ")]
+    frags += level_bar(None if math.isinf(lv) else lv, None, bar_w, lo=OUTPUT_LEVEL.lo, hi=0.0)
+    frags.append(("class:value", f" {shown:>8} (- +)" + la_txt))
+    return frags
 
 
 def draw_strip(m, width, height, seconds=5.0):
@@ -342,11 +380,46 @@ def draw_strip(m, width, height, seconds=5.0):
     return lines
 
 
+def status_lines(m, width):
+    """The latest message wrapped to ``width`` (never cut: past :data:`STATUS_MAX_ROWS` lines
+    its start gives way, and the log keeps it whole)."""
+    text = m.status.text
+    rows = textwrap.wrap(text, max(10, width - 2), break_on_hyphens=False) or [""]
+    if len(rows) > STATUS_MAX_ROWS:
+        rows = ["... (l: the whole message in the log)"] + rows[-(STATUS_MAX_ROWS - 1):]
+    return rows
+
+
 def draw_status(m, width, height):
     st = m.status
     style = {"error": "class:status.error", "warn": "class:status.warn"}.get(st.kind,
                                                                           "class:status")
-    return [_fit([(style, " " + st.text)], width, style)]
+    return [_fit([(style, " " + row)], width, style) for row in status_lines(m, width)][:height]
+
+
+def draw_log(m, width, height):
+    """Every message with its time, wrapped; the newest at the bottom unless scrolled."""
+    text = []
+    for line in m.log.lines():
+        text += textwrap.wrap(line, width, subsequent_indent=" " * 17,
+                              break_on_hyphens=False) or [""]
+    rows = max(1, height - 1)
+    top = max(0, len(text) - rows) if m.log_top is None else m.log_top
+    top = max(0, min(top, max(0, len(text) - rows)))
+    lines = [_fit([("class:help", line)], width, "class:help") for line in text[top:top + rows]]
+    foot = f" -- message log, {len(m.log.entries)} messages: Up/Down/PgUp/PgDn scroll, Esc closes --"
+    lines.append(_fit([("class:head", foot)], width, "class:head"))
+    return lines
+
+
+def draw_too_small(m, width, height):
+    from prompt_toolkit.application.current import get_app
+
+    size = get_app().output.get_size()
+    msg = (f" the window is {size.columns}x{size.rows}: the console needs at least "
+           f"{MIN_COLUMNS}x{MIN_ROWS} (columns x rows); enlarge it. m mutes, q quits.")
+    return [_fit([("class:status.warn", row)], width, "class:status.warn")
+            for row in textwrap.wrap(msg, max(10, width))][:height]
 
 
 def _wrap(line, width):
@@ -406,6 +479,7 @@ class ConsoleLayout:
     command_window: Window
     list_window: Window
     help_window: Window
+    log_window: Window
 
 
 def build_layout(m) -> ConsoleLayout:
@@ -419,15 +493,38 @@ def build_layout(m) -> ConsoleLayout:
                                                                       max=34))
     curve_window = Window(panel(draw_curve))
     meters_window = Window(panel(draw_meters), height=D.exact(meter_line_count(m)))
-    strip_window = Window(panel(draw_strip), height=D(min=1, preferred=2, max=3))
+    strip_window = Window(panel(draw_strip), height=D(min=1, preferred=2, max=2))
     help_window = Window(panel(draw_help, focusable=True))
+    log_window = Window(panel(draw_log, focusable=True))
+    small_window = Window(panel(draw_too_small))
     in_help = Condition(lambda: m.view == "help")
+    in_log = Condition(lambda: m.view == "log")
+
+    def _too_small():
+        from prompt_toolkit.application.current import get_app
+
+        try:
+            size = get_app().output.get_size()
+        except Exception:
+            return False
+        return size.columns < MIN_COLUMNS or size.rows < MIN_ROWS
+
+    too_small = Condition(_too_small)
     main = HSplit([
         VSplit([list_window, Window(width=1, char="|", style="class:sep"), curve_window],
                height=D(min=4)),
         meters_window,
         strip_window,
     ])
+
+    def status_height():
+        from prompt_toolkit.application.current import get_app
+
+        try:
+            cols = get_app().output.get_size().columns
+        except Exception:
+            cols = 80
+        return D.exact(len(status_lines(m, cols)))
 
     def prompt():
         if m.view == "command":
@@ -437,13 +534,16 @@ def build_layout(m) -> ConsoleLayout:
     command_window = Window(BufferControl(buffer=command), height=1, style="class:cmd")
     hint = Window(FormattedTextControl(
         lambda: [] if m.view == "command" or command.text else
-        [("class:dim", "Enter: type a value   :  command   m: mute   ?: help   q: quit")]),
+        [("class:dim", "Enter: value  :  command  - +: output  m: mute  l: log  ?: help  "
+                       "q: quit")]),
         height=1)
     root = HSplit([
         Window(panel(draw_header), height=1),
-        ConditionalContainer(main, filter=~in_help),
-        ConditionalContainer(help_window, filter=in_help),
-        Window(panel(draw_status), height=1),
+        ConditionalContainer(main, filter=~in_help & ~in_log & ~too_small),
+        ConditionalContainer(help_window, filter=in_help & ~too_small),
+        ConditionalContainer(log_window, filter=in_log & ~too_small),
+        ConditionalContainer(small_window, filter=too_small),
+        Window(panel(draw_status), height=status_height),
         VSplit([Window(FormattedTextControl(prompt), width=2, height=1),
                 ConditionalContainer(command_window, filter=Condition(
                     lambda: m.view == "command" or bool(command.text))),
@@ -451,4 +551,4 @@ def build_layout(m) -> ConsoleLayout:
                     lambda: not (m.view == "command" or bool(command.text))))]),
     ])
     return ConsoleLayout(Layout(root, focused_element=list_window), command, command_window,
-                         list_window, help_window)
+                         list_window, help_window, log_window)

@@ -1,136 +1,53 @@
-"""Console state and commands, with no screen: testable alone.
+"""The console's settings and what the user does with them, with no screen: testable alone.
 
-:class:`ConsoleModel` holds what the console shows and does: the chosen parameter, two settings
-slots, undo, the level-matched comparison, the command history, the status line and the latest
-meter readings. It talks to the engine only through its control surface, duck-typed:
+:class:`ConsoleModel` owns the parameter list (the chosen parameter, scrolling), the two
+settings slots with undo and redo, the level-matched comparison, presets (load, save by bare
+name into the user's folder, asking before replacing), bypass, mute, monitor, the output level,
+the algorithm change, test sources, MIDI learn (through :mod:`livedyn.control`), and quitting
+(asked twice while sound plays). The command line and its views are in
+:mod:`livedyn.console.cmdline`, the meter readings in :mod:`livedyn.console.metering`, the
+messages and their log in :mod:`livedyn.console.messages`, the steps in
+:mod:`livedyn.console.steps`.
 
+It talks to the engine only through its control surface, duck-typed:
 ``set(name, value) -> seq``, ``get(name)``, ``snapshot() -> dict``, ``load_preset(name_or_path)``,
 ``bypass(on)``, ``mute(on)``, ``monitor(mode)`` and ``proc`` (``schema``, ``algorithm``,
 ``samplerate``, ``channels``, ``key_channels``). Optional: ``recent_input(seconds) ->
 (main, key)`` (the last ``seconds`` of main input, float32 (frames, channels), and of the key
-input or None) for level matching; ``watch()`` and ``error`` to notice a stream that stopped.
+input or None) for level matching; ``watch()`` and ``error`` to notice a stream that stopped;
+``swap(algorithm)`` to change algorithm; ``set("output_level", dB)``; ``main_source`` and
+``key_source`` (a :class:`livedyn.control.sources.TestSource` can be reprogrammed).
 The console never calls ``stop()``: quitting leaves the engine to its owner.
 
 Every public method that acts on the user's behalf either succeeds or leaves one line in
 :attr:`ConsoleModel.status` saying what was wrong and what is allowed; none raises.
-
-Steps (``nudge``) follow each parameter's taper; see :func:`step_value`.
 """
 from __future__ import annotations
 
 import math
 import time
-from collections import deque
-from dataclasses import dataclass
 from pathlib import Path
 
-from ..params import KEY_EXTERNAL, LAW_DUCKER, ParamError
+from ..params import KEY_EXTERNAL, LAW_DUCKER, OUTPUT_LEVEL, ParamError
 from . import commands as cmds
+from .cmdline import HISTORY_DEPTH, CommandLine  # noqa: F401  (re-exported)
+from .messages import ConsoleError, MessageLog, Status, one_line  # noqa: F401
+from .metering import FLOOR_DB, GR_HISTORY_SECONDS, POINT_FALL_DB_PER_S, Metering  # noqa: F401
+from .steps import (  # noqa: F401  (re-exported: the steps are part of the console's rules)
+    COARSE_FACTOR, FINE_FACTOR, LINEAR_STEPS, LOG_FLOOR, RATIO_TOP, step_value,
+)
 
-#: Small and large steps of a linear parameter by unit (a choice of this console).
-LINEAR_STEPS = {"dBFS": (0.5, 3.0), "dB": (0.5, 3.0), "%": (1.0, 10.0), "ms": (0.1, 1.0)}
-#: Factor of a small and a large geometric step: 20 and 5 steps per decade.
-FINE_FACTOR = 10.0 ** (1.0 / 20.0)
-COARSE_FACTOR = 10.0 ** (1.0 / 5.0)
-#: Smallest non-zero value a log-taper parameter with a lower bound of 0 steps to (ms).
-LOG_FLOOR = 0.1
-#: Largest finite ratio a step reaches; one more step up gives an infinite ratio.
-RATIO_TOP = 100.0
 #: Seconds of input the level match measures, and the least it accepts.
 MATCH_SECONDS = 4.0
 MATCH_MIN_SECONDS = 1.0
-#: Seconds of gain-reduction history kept for the strip.
-GR_HISTORY_SECONDS = 6.0
-#: Fall rate of the displayed operating point, dB/s (like the level meter's bar; common
-#: practice, no source).
-POINT_FALL_DB_PER_S = 20.0
 #: Gate of BS.1770-4 (absolute, LUFS): a render quieter than this cannot be measured.
 ABS_GATE_LUFS = -70.0
-FLOOR_DB = -200.0
 UNDO_DEPTH = 200
+#: Seconds a question (quit while sound plays, replace a preset) waits for its answer.
+ASK_SECONDS = 8.0
+#: Step of the output level keys, dB.
+OUTPUT_STEP_DB = 1.0
 HISTORY_DEPTH = 200
-
-
-class ConsoleError(Exception):
-    """A console action that cannot be done; the message is one line for the status area."""
-
-
-@dataclass
-class Status:
-    """The one status line: ``kind`` is "info", "warn" or "error"."""
-
-    text: str
-    kind: str = "info"
-
-
-def _round_sig(v: float, digits: int = 4) -> float:
-    if v == 0 or math.isinf(v):
-        return v
-    return round(v, digits - 1 - int(math.floor(math.log10(abs(v)))))
-
-
-def step_value(prm, v: float, direction: int, coarse: bool = False) -> float:
-    """The value one step up (``direction`` > 0) or down from ``v``, following the taper.
-
-    * ``linear``: add or subtract a fixed step (:data:`LINEAR_STEPS` by unit, otherwise 1/100
-      and 1/10 of the range), rounded to 1e-6.
-    * ``log`` (times, frequencies, Q): multiply or divide by :data:`FINE_FACTOR` or
-      :data:`COARSE_FACTOR`, rounded to 4 significant digits. A parameter whose range starts at
-      0 steps between 0 and :data:`LOG_FLOOR`; a filter with an off value goes off below its
-      lowest frequency and comes back at it.
-    * ``slope`` (ratio): the step acts in slope space, on ``u = 1 - s = 1/ratio`` (the output dB
-      per input dB above threshold): up divides ``u`` by the factor, down multiplies it, so the
-      ratio moves geometrically; past :data:`RATIO_TOP` the slope reaches 1 (ratio inf) and one
-      step down from inf gives :data:`RATIO_TOP`. The ratio is rounded to 4 significant digits.
-    * ``choice``: the next or previous choice, wrapping around.
-
-    The result is clamped to the parameter's range.
-    """
-    d = 1 if direction > 0 else -1
-    v = float(v)
-    if prm.taper == "choice":
-        return float((int(v) + d) % len(prm.choices))
-    factor = COARSE_FACTOR if coarse else FINE_FACTOR
-    if prm.taper == "slope":
-        u = 0.0 if math.isinf(v) else 1.0 / v
-        if d > 0:
-            u = u / factor
-            if u < (1.0 / RATIO_TOP) * (1.0 - 1e-9):
-                u = 0.0
-        else:
-            u = 1.0 / RATIO_TOP if u == 0.0 else min(1.0, u * factor)
-        r = math.inf if u == 0.0 else _round_sig(1.0 / u)
-        return min(max(r, prm.lo), prm.hi)
-    if prm.taper == "log":
-        is_off = prm.off_value is not None and v == prm.off_value
-        floor = prm.lo if prm.lo > 0 else LOG_FLOOR
-        if d > 0:
-            if is_off or v < floor:
-                return floor
-            new = v * factor
-        else:
-            if is_off:
-                return v
-            if v <= floor:
-                if prm.off_value is not None:
-                    return float(prm.off_value)
-                return float(prm.lo)
-            new = max(v / factor, floor)
-        return min(max(_round_sig(new), floor), prm.hi)
-    small, large = LINEAR_STEPS.get(prm.unit, ((prm.hi - prm.lo) / 100.0,
-                                               (prm.hi - prm.lo) / 10.0))
-    new = round(v + d * (large if coarse else small), 6)
-    return min(max(new, prm.lo), prm.hi)
-
-
-def one_line(err) -> str:
-    """An exception (or text) as one status line."""
-    text = str(err).strip()
-    line = text.splitlines()[0] if text else ""
-    if isinstance(err, (ParamError, ConsoleError, cmds.CommandError)):
-        return line or type(err).__name__
-    name = type(err).__name__ if isinstance(err, BaseException) else ""
-    return f"{name}: {line}" if name and line else (line or name or "error")
 
 
 class _CurveView:
@@ -153,7 +70,7 @@ class _CurveView:
         return dict(self._values)
 
 
-class ConsoleModel:
+class ConsoleModel(CommandLine, Metering):
     """State and commands of the console over an engine's control surface.
 
     Parameters
@@ -169,10 +86,12 @@ class ConsoleModel:
         (e.g. "the JACK server stopped") that the console then shows.
     match_seconds : float
         Seconds of recent input the level match measures.
+    controls : livedyn.control.hub.Controls, optional
+        Remote controls (MIDI, OSC): their changes show here, and learn maps a MIDI control.
     """
 
     def __init__(self, engine, title="livedyn console", clock=time.monotonic, check=None,
-                 match_seconds=MATCH_SECONDS):
+                 match_seconds=MATCH_SECONDS, controls=None):
         self.engine = engine
         self.proc = engine.proc
         self.schema = self.proc.schema
@@ -184,34 +103,44 @@ class ConsoleModel:
         self.match_seconds = float(match_seconds)
         self.samplerate = float(getattr(self.proc, "samplerate", 48000.0))
 
-        self.view = "list"  # "list", "command" or "help"
+        self.view = "list"  # "list", "command", "help" or "log"
         self.selected = 0
         self.list_top = 0
-        self.help_top = 0
         self.quit_requested = False
+        self.question = None  # (kind, text, action, deadline): waits for y (or q for quit)
+        self.controls = controls
         current = {n: float(engine.get(n)) for n in self.names}
         self.slots = {"a": dict(current), "b": dict(current)}
         self.active = "a"
         self.undo_stacks = {"a": [], "b": []}
+        self.redo_stacks = {"a": [], "b": []}
         self.match = False
         self.trims = {"a": 0.0, "b": 0.0}
         self.loudness = {"a": None, "b": None}
         self.trim_limited = False
         self._match_measured_s = 0.0
-        self.history = []
-        self._hist_i = 0
-        self._hist_draft = ""
         self.last_seq = None
-        self.snap = {}
-        self.gr_history = deque()
-        self._point = {"x": None, "y": None, "key": None, "t": None}
-        self._reported_error = None
+        self.log = MessageLog()
+        self._status = Status("")
+        self._init_command_line()
+        self._init_metering()
         snap = self._safe_snapshot() or {}
         self.bypassed = bool(snap.get("bypassed", False))
         self.muted = bool(snap.get("muted", False))
         self.monitor_mode = str(snap.get("monitor", "out"))
         self.status = Status("Loud monitoring can damage hearing; beware feedback; follow "
                              "venue rules (? help)", "warn")
+
+    @property
+    def status(self) -> Status:
+        """The latest message (the message area shows it whole); each one also goes to the
+        log."""
+        return self._status
+
+    @status.setter
+    def status(self, st: Status):
+        self._status = st
+        self.log.add(st)
 
     def _rebind(self):
         """The engine swapped in another version of the algorithm: take its parameters."""
@@ -226,6 +155,7 @@ class ConsoleModel:
         for slot in ("a", "b"):
             self.slots[slot] = {n: self.slots[slot].get(n, current[n]) for n in self.names}
             self.undo_stacks[slot] = []
+            self.redo_stacks[slot] = []
         self.slots[self.active] = dict(current)
 
     # ---- reading ------------------------------------------------------------------------------
@@ -399,6 +329,7 @@ class ConsoleModel:
             stack = self.undo_stacks[self.active]
             stack.append(before)
             del stack[:-UNDO_DEPTH]
+            self.redo_stacks[self.active].clear()
             self._after_change()
         return before
 
@@ -469,10 +400,29 @@ class ConsoleModel:
                 self.warn(f"nothing to undo on slot {self.active.upper()}")
                 return
             entry = stack.pop()
+            now = {n: self.value(n) for n in entry}
             self._apply(entry)
+            self.redo_stacks[self.active].append(now)
             self._after_change()
             shown = ", ".join(f"{n} {self.schema[n].format(v)}" for n, v in entry.items())
-            self.info(f"undo: {shown}")
+            self.info(f"undo: {shown} (r redoes)")
+        except Exception as e:
+            self.fail(e)
+
+    def redo(self):
+        """Put back what the last undo on the active slot took away."""
+        try:
+            stack = self.redo_stacks[self.active]
+            if not stack:
+                self.warn(f"nothing to redo on slot {self.active.upper()}")
+                return
+            entry = stack.pop()
+            now = {n: self.value(n) for n in entry}
+            self._apply(entry)
+            self.undo_stacks[self.active].append(now)
+            self._after_change()
+            shown = ", ".join(f"{n} {self.schema[n].format(v)}" for n, v in entry.items())
+            self.info(f"redo: {shown}")
         except Exception as e:
             self.fail(e)
 
@@ -636,24 +586,253 @@ class ConsoleModel:
             pass
 
     def save(self, path):
-        """Write the active slot's values (makeup without the match trim) as a preset file."""
+        """Write the active slot's values (makeup without the match trim) as a preset.
+
+        A bare name (``save mine``) goes to the user's presets folder
+        (:func:`livedyn.presets.user_presets_dir`), where ``load mine`` finds it; anything
+        else is a file path (``.toml`` added when it has no suffix). The shipped presets are
+        never written. Replacing an existing file asks first (y replaces)."""
         from .. import algorithms, presets
 
         name = getattr(self.algorithm, "name", "")
         source = getattr(self.algorithm, "source", None)
         if name not in algorithms.BUILTINS and source is None:
             raise ConsoleError(f"save: {name!r} is neither built in nor an algorithm file")
-        target = Path(str(path)).expanduser()
-        if target.suffix == "":
-            target = target.with_name(target.name + presets.SUFFIX)
-        desc = f"saved from the console, slot {self.active.upper()}"
-        if source is not None:  # the preset names the file and carries its values
-            pr = presets.Preset(Path(source).stem, dict(self.slots[self.active]), desc,
-                                algorithm_file=Path(source))
+        text = str(path).strip()
+        if presets._is_bare_name(text):
+            target = presets.user_preset_path(text)
         else:
-            pr = presets.Preset(name, dict(self.slots[self.active]), desc)
-        presets.save(pr, target)
-        self.info(f"saved slot {self.active.upper()} to {target}")
+            target = Path(text).expanduser()
+            if target.suffix == "":
+                target = target.with_name(target.name + presets.SUFFIX)
+        if presets.is_shipped(target):
+            raise ConsoleError(f"save: {target} is a shipped preset, which stays as it is; "
+                               f"save under another name, or 'save {target.stem}' to keep "
+                               "your own copy in your presets folder")
+        desc = f"saved from the console, slot {self.active.upper()}"
+        values = dict(self.slots[self.active])
+        if source is not None:  # the preset names the file and carries its values
+            pr = presets.Preset(Path(source).stem, values, desc, algorithm_file=Path(source))
+        else:
+            pr = presets.Preset(name, values, desc)
+        slot = self.active.upper()
+
+        def write():
+            presets.save(pr, target)
+            self.info(f"saved slot {slot} to {target}")
+
+        if target.exists():
+            self.ask("save", f"{target} exists: press y to replace it, any other key keeps it",
+                     write)
+            return
+        write()
+
+    # ---- questions ----------------------------------------------------------------------------
+    def ask(self, kind, text, action):
+        """Ask a yes/no question in the message area; :meth:`answer` runs ``action`` on yes.
+        Unanswered after :data:`ASK_SECONDS`, the question lapses (nothing is done)."""
+        self.question = (kind, text, action, float(self.clock()) + ASK_SECONDS)
+        self.warn(text)
+
+    def answer(self, yes) -> bool:
+        """Answer the pending question; returns True when there was one."""
+        q, self.question = self.question, None
+        if q is None:
+            return False
+        if yes:
+            try:
+                q[2]()
+            except Exception as e:
+                self.fail(e)
+        else:
+            self.info({"quit": "not quitting: the sound goes on",
+                       "save": "not saved: the file stays as it was"}.get(q[0], "cancelled"))
+        return True
+
+    # ---- quitting -----------------------------------------------------------------------------
+    @property
+    def sound_playing(self) -> bool:
+        """True unless the engine says its stream is not running (an engine that cannot say
+        counts as playing, so quitting asks)."""
+        eng = self.engine
+        if getattr(eng, "error", None):
+            return False
+        return getattr(eng, "stream", True) is not None
+
+    def request_quit(self):
+        """q or Ctrl+C: leave at once when no sound plays, otherwise ask first (a second q or
+        Ctrl+C, or y, confirms; ``:quit`` typed out needs no question)."""
+        if self.question is not None and self.question[0] == "quit":
+            self.answer(True)
+            return
+        if not self.sound_playing:
+            self.quit_requested = True
+            return
+
+        def leave():
+            self.quit_requested = True
+            self.info("quit")
+
+        self.ask("quit", "sound is playing: press q (or Ctrl+C) again to stop it and leave, "
+                 "any other key carries on", leave)
+
+    # ---- output level -------------------------------------------------------------------------
+    @property
+    def output_level(self):
+        """The output (monitor) level in dB (``-inf``: off), or None when the engine has none."""
+        try:
+            return float(self.engine.get(OUTPUT_LEVEL.name))
+        except Exception:
+            return None
+
+    def set_output_level(self, value):
+        """Set the output level from text or a number (dB, -60 to 0, or off)."""
+        if self.output_level is None:
+            raise ConsoleError("output: this engine has no output level control")
+        v = OUTPUT_LEVEL.parse(value)
+        self.engine.set(OUTPUT_LEVEL.name, v)
+        self.info(f"output level {OUTPUT_LEVEL.format(v)}")
+
+    def step_output(self, direction):
+        """One :data:`OUTPUT_STEP_DB` step up or down; below -60 dB it is off."""
+        cur = self.output_level
+        if cur is None:
+            raise ConsoleError("output: this engine has no output level control")
+        lo, hi = OUTPUT_LEVEL.lo, OUTPUT_LEVEL.hi
+        if direction > 0:
+            new = lo if math.isinf(cur) else min(hi, cur + OUTPUT_STEP_DB)
+        else:
+            new = -math.inf if (math.isinf(cur) or cur - OUTPUT_STEP_DB < lo) else \
+                cur - OUTPUT_STEP_DB
+        self.set_output_level(new)
+
+    # ---- algorithm, test sources --------------------------------------------------------------
+    def change_algorithm(self, name_or_file):
+        """Crossfade to another algorithm (a built-in name or an algorithm file) through the
+        engine's swap; parameters both share keep their values."""
+        swap = getattr(self.engine, "swap", None)
+        if not callable(swap):
+            raise ConsoleError("algorithm: this engine cannot change algorithm")
+        old = self.algorithm.name
+        info = swap(str(name_or_file).strip())
+        self._rebind()
+        carried = info.get("carried", []) if isinstance(info, dict) else []
+        self.info(f"algorithm {self.algorithm.name} crossfaded in (was {old}); "
+                  f"{len(carried)} shared value{'s' if len(carried) != 1 else ''} kept, "
+                  "the others at their defaults")
+
+    def set_source(self, text):
+        """``main|key KIND [ARGS]``: reprogram a test source (see
+        :mod:`livedyn.control.sources`)."""
+        which, _, rest = str(text).strip().partition(" ")
+        which = which.lower()
+        if which not in ("main", "key"):
+            raise ConsoleError(f"source {which!r}: expected source main|key KIND, e.g. "
+                               "source main tone 1000 -20")
+        src = getattr(self.engine, f"{which}_source", None)
+        if not hasattr(src, "program"):
+            raise ConsoleError(f"source {which}: the {which} input is not a test source; start "
+                               f"livedyn run with --test-{which} KIND to switch test signals")
+        desc = src.program(rest)
+        self.info(f"{which} input: {desc} (heard after the input buffer, up to 1 s)")
+
+    # ---- MIDI learn and mappings ----------------------------------------------------------------
+    def _midi(self, what):
+        midi = getattr(self.controls, "midi", None)
+        if midi is None:
+            raise ConsoleError(f"{what}: no MIDI input; start livedyn run with --midi PORT "
+                               "(livedyn devices lists the ports)")
+        return midi
+
+    def learn(self, target=None):
+        """Map the next MIDI control that moves to ``target`` (default: the chosen
+        parameter)."""
+        midi = self._midi("learn")
+        target = target or self.names[self.selected]
+        self.controls.check_target(target)
+        midi.learn(target)
+        self.info(f"learn {target}: move a MIDI control (knob, fader, key or program change);"
+                  " Esc cancels")
+
+    def forget(self, target=None):
+        midi = self._midi("forget")
+        target = target or self.names[self.selected]
+        n = midi.forget(target)
+        self.info(f"{target}: {n} MIDI mapping{'s' if n != 1 else ''} removed")
+
+    def mappings_command(self, text):
+        midi = self._midi("mappings")
+        verb, _, where = str(text).strip().partition(" ")
+        if verb not in ("save", "load") or not where.strip():
+            raise ConsoleError(f"mappings {text!r}: expected mappings save|load FILE")
+        if verb == "save":
+            path = midi.save_mappings(where.strip())
+            self.info(f"saved {len(midi.mappings)} MIDI mappings to {path}")
+        else:
+            path = midi.load_mappings(where.strip())
+            self.info(f"loaded {len(midi.mappings)} MIDI mappings from {path}")
+
+    def midi_port(self, text=""):
+        """``midi`` lists the MIDI input ports; ``midi PORT`` reads from that port instead
+        (the mappings stay); ``midi off`` stops reading MIDI."""
+        from ..control import midi as m
+
+        text = str(text or "").strip()
+        if not text:
+            ports = m.list_ports()
+            now = getattr(getattr(self.controls, "midi", None), "port_name", "") or "none"
+            listed = "; ".join(f"{i}: {p['api']}: {p['name']}" for i, p in enumerate(ports))
+            self.info(f"MIDI inputs: {listed or 'none (no JACK server or ALSA sequencer)'}; "
+                      f"reading: {now}")
+            return
+        if self.controls is None:
+            raise ConsoleError("midi: this console has no remote controls")
+        old = self.controls.midi
+        if text.lower() == "off":
+            if old is None:
+                raise ConsoleError("midi off: no MIDI input is open")
+            old.stop()
+            self.controls.midi = None
+            self.info(f"MIDI: stopped reading {old.port_name} (its mappings are forgotten; "
+                      "mappings save FILE keeps them)")
+            return
+        try:
+            port, name = m.open_port(text, client="livedyn")
+        except m.MidiError as e:
+            raise ConsoleError(str(e).replace("--midi ", "midi ", 1)) from None
+        kept = list(old.mappings) if old is not None else []
+        if old is not None:
+            old.stop()
+        m.MidiControl(self.controls, port, kept, name).start()
+        self.info(f"MIDI: reading {name} ({len(kept)} mapping{'s' if len(kept) != 1 else ''} "
+                  "kept)")
+
+    def mapping_label(self, name) -> str:
+        midi = getattr(self.controls, "midi", None)
+        return midi.label(name) if midi is not None else ""
+
+    def _after_tick(self, now):
+        q = self.question
+        if q is not None and now > q[3]:
+            self.answer(False)
+        if self.controls is not None:
+            self._take_remote()
+
+    def _take_remote(self):
+        """Changes and actions from MIDI and OSC: values show in the active slot, actions
+        (slot, compare, presets, mute, bypass) run here as if typed."""
+        take = self.controls.take_for_console()
+        for name, v in take.values:
+            if name in self.slots[self.active]:
+                self.slots[self.active][name] = float(v)
+        for verb, arg in take.actions:
+            try:
+                self._dispatch(cmds.Command(verb, arg))
+            except Exception as e:
+                self.fail(e)
+        for level, text in take.notices:
+            self.status = Status(one_line(text), level if level in ("info", "warn")
+                                 else "error")
 
     def preset_names(self):
         from .. import presets
@@ -684,224 +863,3 @@ class ConsoleModel:
                 "delta": "the delta (what the processor removes)"}[mode]
         self.info(f"monitor {mode}: you hear {what}")
 
-    # ---- the command line ---------------------------------------------------------------------
-    def begin_edit(self) -> str:
-        """Open the command line for a value of the selected parameter; returns its text."""
-        prm = self.param
-        self.view = "command"
-        self.info(f"type a value for {prm.name}: {prm.describe_range()} (now "
-                  f"{prm.format(self.value(prm.name))}); Enter sets, Esc cancels")
-        return prm.name + " "
-
-    def begin_command(self) -> str:
-        self.view = "command"
-        self.info("type a command (Tab completes, Up/Down recall, Esc cancels, help lists all)")
-        return ""
-
-    def cancel_command(self):
-        self.view = "list"
-        self._hist_i = len(self.history)
-        self.info("")
-
-    def run_command(self, line) -> None:
-        """Run one command line; the outcome is in :attr:`status`, never an exception."""
-        text = " ".join(str(line).split())
-        self.view = "list"
-        if text:
-            if not self.history or self.history[-1] != text:
-                self.history.append(text)
-                del self.history[:-HISTORY_DEPTH]
-        self._hist_i = len(self.history)
-        try:
-            cmd = cmds.parse(text, self.names)
-            if cmd is not None:
-                self._dispatch(cmd)
-        except Exception as e:
-            self.fail(e)
-
-    def _dispatch(self, cmd):
-        v, arg = cmd.verb, cmd.arg
-        onoff = {"on": True, "off": False, "": None}
-        if v == "set":
-            self.select(cmd.name)
-            self.set_param(cmd.name, arg)
-        elif v == "load":
-            self.load(arg)
-        elif v == "save":
-            self.save(arg)
-        elif v == "bypass":
-            self.set_bypass(onoff[arg])
-        elif v == "mute":
-            self.set_mute(onoff[arg])
-        elif v == "monitor":
-            self.set_monitor(arg)
-        elif v == "slot":
-            self.switch_slot(arg)
-        elif v == "compare":
-            self.compare()
-        elif v == "match":
-            self.set_match(arg != "off")
-        elif v == "undo":
-            self.undo()
-        elif v == "help":
-            self.open_help()
-        elif v == "quit":
-            self.quit_requested = True
-            self.info("quit")
-        else:  # parse() only returns the verbs above
-            raise ConsoleError(f"unknown command {v!r}")
-
-    def complete(self, line) -> str:
-        """Complete the last word of ``line``; several fits are listed in the status line."""
-        try:
-            c = cmds.complete(line, self.schema, self.preset_names())
-        except Exception as e:
-            self.fail(e)
-            return line
-        if len(c.candidates) > 1:
-            shown = c.candidates[:12]
-            more = len(c.candidates) - len(shown)
-            self.info("  ".join(shown) + (f"  (+{more} more)" if more else ""))
-        elif not c.candidates:
-            self.warn("no completion")
-        return c.line
-
-    def history_back(self, current="") -> str:
-        if not self.history:
-            return current
-        if self._hist_i >= len(self.history):
-            self._hist_draft = current
-        self._hist_i = max(0, self._hist_i - 1)
-        return self.history[self._hist_i]
-
-    def history_forward(self, current="") -> str:
-        if self._hist_i >= len(self.history):
-            return current
-        self._hist_i += 1
-        if self._hist_i >= len(self.history):
-            return self._hist_draft
-        return self.history[self._hist_i]
-
-    # ---- help ---------------------------------------------------------------------------------
-    def help_lines(self):
-        return cmds.help_lines(self.schema, self.algorithm.name)
-
-    def open_help(self):
-        self.view = "help"
-        self.help_top = 0
-        self.info("help: Up/Down/PgUp/PgDn scroll, Esc closes")
-
-    def close_help(self):
-        self.view = "list"
-        self.info("")
-
-    def scroll_help(self, delta, rows=20):
-        n = len(self.help_lines())
-        self.help_top = max(0, min(max(0, n - rows), self.help_top + int(delta)))
-
-    def request_quit(self):
-        self.quit_requested = True
-
-    # ---- meters -------------------------------------------------------------------------------
-    def _safe_snapshot(self):
-        try:
-            return self.engine.snapshot()
-        except Exception as e:
-            self.status = Status(f"meters: {one_line(e)}", "error")
-            return None
-
-    def tick(self):
-        """Read the engine's meters once (call at >= 20 Hz); never raises."""
-        try:
-            self._tick()
-        except Exception as e:
-            self.fail(e)
-
-    def _tick(self):
-        now = float(self.clock())
-        snap = self._safe_snapshot()
-        if snap is None:
-            return
-        self.snap = snap
-        self.bypassed = bool(snap.get("bypassed", self.bypassed))
-        self.muted = bool(snap.get("muted", self.muted))
-        gr = float(snap.get("gain_reduction_db", 0.0) or 0.0)
-        self.gr_history.append((now, gr))
-        while self.gr_history and self.gr_history[0][0] < now - GR_HISTORY_SECONDS:
-            self.gr_history.popleft()
-        self._update_point(now, snap, gr)
-        err = None
-        watch = getattr(self.engine, "watch", None)
-        if callable(watch):
-            watch()
-        take = getattr(self.engine, "take_notices", None)
-        if callable(take):
-            for level, text in take():
-                self.status = Status(one_line(text), level if level in ("info", "warn")
-                                     else "error")
-        if getattr(self.engine, "proc", self.proc) is not self.proc:
-            self._rebind()
-        e = getattr(self.engine, "error", None)
-        if e:
-            err = f"stream stopped: {e}"
-        if err is None and self.check is not None:
-            c = self.check()
-            if c:
-                err = str(c)
-        if err and err != self._reported_error:
-            self._reported_error = err
-            self.status = Status(one_line(err) + " (quit with q)", "error")
-
-    def _update_point(self, now, snap, gr):
-        def top(values):
-            vals = [float(v) for v in (values or []) if v is not None]
-            return max(vals) if vals else None
-
-        key = top(snap.get("peak_key_dbfs"))
-        main = top(snap.get("peak_in_dbfs"))
-        out = top(snap.get("peak_out_dbfs"))
-        p = self._point
-        dt = 0.0 if p["t"] is None else max(0.0, now - p["t"])
-        fall = POINT_FALL_DB_PER_S * dt
-
-        def ballistic(old, new):  # instant rise, fall at POINT_FALL_DB_PER_S
-            if new is None:
-                return old
-            if old is None:
-                return new
-            return max(new, old - fall)
-
-        p["key"] = ballistic(p["key"], key)
-        ducker = self.algorithm.law == LAW_DUCKER and self.algorithm.kind != "limiter"
-        if ducker or self.key_driven:
-            x = p["key"]
-            from ..analysis import DUCKER_MAIN_DB
-
-            if x is not None:
-                base = DUCKER_MAIN_DB if ducker else x
-                mk = self.live_value("makeup") if "makeup" in self.schema else 0.0
-                p["x"], p["y"] = x, base - gr + mk
-        else:
-            p["x"] = ballistic(p["x"], main)
-            p["y"] = ballistic(p["y"], out)
-        p["t"] = now
-
-    def gr_strip(self, columns: int, seconds: float = 5.0):
-        """Largest gain reduction per column over the last ``seconds`` (oldest first), dB;
-        None before the first reading."""
-        columns = max(1, int(columns))
-        now = self.gr_history[-1][0] if self.gr_history else float(self.clock())
-        start = now - seconds
-        out = [None] * columns
-        for t, g in self.gr_history:
-            if t < start:
-                continue
-            i = min(columns - 1, int((t - start) / seconds * columns))
-            out[i] = g if out[i] is None else max(out[i], g)
-        # a column no reading fell in (a late redraw) takes its left neighbour's value
-        seen = [i for i, v in enumerate(out) if v is not None]
-        if seen:
-            for i in range(seen[0] + 1, seen[-1]):
-                if out[i] is None:
-                    out[i] = out[i - 1]
-        return out

@@ -12,7 +12,7 @@ Per block: timing and flags; parameter handoff (echoing the sequence number used
 input from the device channels or from file rings; the processor kernel, called through an
 address table so that the kernel can change at a block boundary without recompiling the
 callback; monitor selection (processed, key, delta); the always-on last stage (non-finite mute,
-fade, mute, ceiling); output channel map; peak meters; the tap ring for the recorder and meters.
+fade, mute, ceiling); output channel map at the output level; peak meters; the tap ring for the recorder and meters.
 """
 import numba as nb
 import numpy as np
@@ -21,6 +21,7 @@ from numba import carray, types
 from ..dsp.dynamics import dynamics_block as _DYN
 from ..dsp.layout import NTRACE, S_GR_MAX, T_KEY
 from ..dsp.limiter import limiter_block as _LIM
+from ..params import P_OUTPUT_LEVEL
 from .intrinsics import (
     call_job, fence_acquire, fence_release, int_to_voidptr, load_acquire, load_relaxed,
     monotonic_ns, store_relaxed, store_release, voidptr_to_int,
@@ -88,6 +89,7 @@ STATS_SIZE = 32
 
 # ---- safety state (float64) -----------------------------------------------------------------
 F_GAIN, F_TARGET, F_FADE_STEP, F_MUTE_STEP, F_CEIL = 0, 1, 2, 3, 4
+F_LEVEL, F_LEVEL_COEF = 5, 6  # output level: gliding linear gain, its one-pole coefficient
 SAFE_SIZE = 8
 
 # ---- meters (float64), written every block --------------------------------------------------
@@ -476,13 +478,21 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
     safe = carray(int_to_voidptr(ud[U_SAFE]), (SAFE_SIZE,), np.float64)
     safety_stage(y, n, ch, safe, load_relaxed(ud, U_MUTE) | load_relaxed(ud, U_STOPPING), stats)
 
-    # ---- output channel map ----------------------------------------------------------------
+    # ---- output channel map, at the output level (dB in the parameter array, gliding per
+    # sample; attenuation only, so the ceiling holds; meters and the tap read y before it) ----
     out = carray(outp, (n, nout), np.float32)
     omap = carray(int_to_voidptr(ud[U_OUT_MAP]), (nout,), np.int64)
+    lv_db = carray(int_to_voidptr(job[J_P]), (job[J_PLEN],), np.float64)[P_OUTPUT_LEVEL]
+    lt = 10.0 ** (0.05 * min(lv_db, 0.0)) if lv_db > -120.0 else 0.0
+    lv, a = safe[F_LEVEL], safe[F_LEVEL_COEF]
     for i in range(n):
+        lv = lt + a * (lv - lt)
+        if abs(lv - lt) < 1e-9:  # arrived (and no subnormal tail toward 0)
+            lv = lt
         for c in range(nout):
             j = omap[c]
-            out[i, c] = y[i, j] if j >= 0 else 0.0
+            out[i, c] = np.float32(y[i, j] * lv) if j >= 0 else 0.0
+    safe[F_LEVEL] = lv
 
     # ---- meters --------------------------------------------------------------------------------
     m = carray(int_to_voidptr(ud[U_METER]), (METER_SIZE,), np.float64)

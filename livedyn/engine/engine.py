@@ -17,7 +17,7 @@ import numpy as np
 
 from ..dsp.layout import NTRACE
 from ..meters import MeterSet
-from ..params import MAX_USER_LATENCY, NPARAM, ParamError
+from ..params import GLIDE_MS, MAX_USER_LATENCY, NPARAM, OUTPUT_LEVEL, P_OUTPUT_LEVEL, ParamError
 from ..processor import Processor
 from . import callback as cb
 from . import realtime as rt
@@ -141,14 +141,20 @@ class Engine:
         Ask for real time where the system allows it (default): lock the process's memory
         where the memlock limit allows and ask the host API for a real-time callback thread
         (see ``engine/realtime.py``). ``snapshot()["realtime"]`` says what was granted.
+    output_level_db : float
+        Output (monitor) level in dB (0 is unity, ``-inf`` silent): the last gain before the
+        device outputs, gliding per sample; meters and recordings are taken before it.
+        ``set("output_level", dB)`` changes it.
     """
 
     def __init__(self, processor: Processor, blocksize=64, device=None, input_device=None,
                  output_device=None, main_inputs=None, key_inputs=None, outputs=None,
                  main_source=None, key_source=None, record_dir=None, ceiling_db=-1.0,
                  fade_in_ms=500.0, fade_out_ms=50.0, mute_ms=5.0, max_frames=8192,
-                 monitor="out", meters=True, instances=1, realtime=True):
+                 monitor="out", meters=True, instances=1, realtime=True,
+                 output_level_db=0.0):
         self.proc = processor
+        processor.p[P_OUTPUT_LEVEL] = OUTPUT_LEVEL.check(output_level_db)
         self.realtime = bool(realtime)
         self._memory = (False, "memory not locked (real time not asked)")
         self._rt_finder = rt.ThreadFinder()
@@ -228,6 +234,8 @@ class Engine:
         self.safe[cb.F_FADE_STEP] = 1.0 / max(1.0, fade_in_ms * self.fs / 1000.0)
         self.safe[cb.F_MUTE_STEP] = 1.0 / max(1.0, mute_ms * self.fs / 1000.0)
         self.safe[cb.F_CEIL] = 10 ** (ceiling_db / 20.0)
+        self.safe[cb.F_LEVEL] = 10 ** (min(processor.p[P_OUTPUT_LEVEL], 0.0) / 20.0)
+        self.safe[cb.F_LEVEL_COEF] = math.exp(-1.0 / (GLIDE_MS / 1000.0 * self.fs))
         self._fade_out_step = 1.0 / max(1.0, fade_out_ms * self.fs / 1000.0)
         # the dry line delays by any latency a processor (or a later version) may have
         dry_len = max(processor.ring.shape[0], MAX_USER_LATENCY + 1) + maxf
@@ -542,6 +550,9 @@ class Engine:
     def set(self, name, value):
         """Set a parameter; it reaches the callback at its next block. Returns the sequence."""
         with self._lock:
+            if name == OUTPUT_LEVEL.name:  # the engine's own, not the algorithm's
+                self.pend[P_OUTPUT_LEVEL] = OUTPUT_LEVEL.parse(value)
+                return int(cb.publish_params(self.ud, self.pend))
             prm = self.proc.schema[name]
             v = prm.parse(value)
             trial = self.pend.copy()
@@ -558,6 +569,8 @@ class Engine:
             return seq
 
     def get(self, name):
+        if name == OUTPUT_LEVEL.name:
+            return float(self.pend[P_OUTPUT_LEVEL])
         return float(self.pend[self.proc.schema[name].slot])
 
     def wait_applied(self, seq, timeout=1.0):
@@ -626,6 +639,7 @@ class Engine:
                         carried.append(prm.name)
                     except ParamError:
                         pass  # out of the new range: the new default stands
+            new.p[P_OUTPUT_LEVEL] = self.pend[P_OUTPUT_LEVEL]  # the output level carries on
             main, key = self.recent_input(prime_seconds)
             if len(main):
                 blk = 1024
