@@ -513,22 +513,8 @@ def cmd_new_algorithm(args):
     return 0
 
 
-def _bench():
-    """The bench/ package of the source tree (it is not installed with livedyn)."""
-    root = Path(__file__).resolve().parent.parent
-    if not (root / "bench" / "__init__.py").exists():
-        raise CliError("the bench harness lives in the source tree's bench/ folder; run livedyn "
-                       "from a clone of the repository")
-    if str(root) not in sys.path:
-        sys.path.insert(0, str(root))
-    import bench
-
-    return bench
-
-
 def cmd_bench(args):
-    _bench()
-    from bench import live
+    from .bench import live
 
     what = args.what
     result = {}
@@ -536,14 +522,14 @@ def cmd_bench(args):
 
     user_file = is_user_file(args.algorithm)
     if user_file and what in ("kernels", "all"):
-        from bench.user import format_user, run_user
+        from .bench.user import format_user, run_user
 
         result["kernels"] = run_user(args.algorithm, quick=args.quick,
                                      samplerate=int(args.samplerate))
         print(format_user(result["kernels"]), flush=True)
     elif what in ("kernels", "all"):
-        from bench.kernels import machine_info, report
-        from bench.sweep import run_sweep
+        from .bench.kernels import machine_info, report
+        from .bench.sweep import run_sweep
 
         rows = run_sweep(quick=args.quick)
         result["kernels"] = report(rows, machine_info())
@@ -575,7 +561,7 @@ def cmd_bench(args):
                                              device=args.device, realtime=not args.no_realtime)
     plots = []
     if args.plot:
-        from bench import plots as bp
+        from .bench import plots as bp
 
         if not bp.have_matplotlib():
             print("(no plots: install the plot extra, pip install 'livedyn[plot]')")

@@ -48,6 +48,7 @@ import tomli_w
 
 from . import algorithms
 from .params import ALL, Param, ParamError, Schema
+from .shipped import presets_folder
 
 __all__ = [
     "FORMAT_VERSION",
@@ -139,11 +140,11 @@ class Preset:
 
 
 def presets_dir() -> Path:
-    """The folder of shipped presets: ``$LIVEDYN_PRESETS`` or the repository's ``presets/``."""
+    """The folder of shipped presets: ``$LIVEDYN_PRESETS`` or the package's ``presets/``."""
     env = os.environ.get(ENV_DIR)
     if env:
         return Path(env).expanduser()
-    return Path(__file__).resolve().parent.parent / "presets"
+    return presets_folder()
 
 
 def _is_bare_name(x) -> bool:

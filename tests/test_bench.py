@@ -1,6 +1,6 @@
 """The kernel benchmark: plain-Python twins agree with the numba kernels; the harness runs.
 
-Reference for the agreement checks: bench.twins, an independent plain-Python implementation of
+Reference for the agreement checks: livedyn.bench.twins, an independent plain-Python implementation of
 the equations livedyn.dsp documents ([GMR2012] eqs. (3), (4), (16), (17); Audio EQ Cookbook key
 filters; ITU-R BS.1770-4 Annex 2 true-peak interpolation; the limiter design in the
 livedyn.dsp.limiter docstring). Both evaluate the same IEEE-754 double operations in the same
@@ -15,10 +15,10 @@ import math
 import numpy as np
 import pytest
 
-import bench.kernels as bk
-from bench.__main__ import main as bench_main
-from bench.kernels import CASES, ROW_KEYS, TOLERANCE, noise_bursts, report, run_kernels
-from bench.twins import twin_for
+import livedyn.bench.kernels as bk
+from livedyn.bench.__main__ import main as bench_main
+from livedyn.bench.kernels import CASES, ROW_KEYS, TOLERANCE, noise_bursts, report, run_kernels
+from livedyn.bench.twins import twin_for
 from livedyn.dsp import layout as L
 from livedyn.params import P_RATIO
 from livedyn.processor import Processor

@@ -1,7 +1,7 @@
-"""The plain-C twins (bench/ctwin) agree with the numba kernels; the build helper and harness work.
+"""The plain-C twins (livedyn/bench/ctwin) agree with the numba kernels; the build helper and harness work.
 
 Reference for the agreement checks: the numba kernels livedyn.dsp.dynamics.dynamics_block and
-livedyn.dsp.limiter.limiter_block, of which bench/ctwin/kernels.c is an independent C
+livedyn.dsp.limiter.limiter_block, of which livedyn/bench/ctwin/kernels.c is an independent C
 transcription (same IEEE-754 double operations in the same order, the same libm functions, no
 fast math, no multiply-add contraction on either side: -ffp-contract=off for gcc, and numba
 without fastmath lets LLVM contract nothing). Outputs, traces and final states are therefore
@@ -17,9 +17,9 @@ import subprocess
 import numpy as np
 import pytest
 
-import bench.ctwin as ct
-import bench.kernels as bk
-from bench.kernels import CASES, CTWIN_ROW_KEYS, ROW_KEYS, noise_bursts, run_ctwin, run_kernels
+import livedyn.bench.ctwin as ct
+import livedyn.bench.kernels as bk
+from livedyn.bench.kernels import CASES, CTWIN_ROW_KEYS, ROW_KEYS, noise_bursts, run_ctwin, run_kernels
 from livedyn.dsp import layout as L
 from livedyn.dsp import stages as S
 from livedyn.params import ParamError
@@ -229,7 +229,7 @@ def test_c_twin_matches_random_settings(lib, seed):
 
 @pytest.mark.parametrize("algorithm", ["compressor", "limiter"])
 def test_c_driver_matches_numba_driver(lib, algorithm):
-    # Reference: bench.kernels.drive (the numba block loop): the same whole blocks, the same
+    # Reference: livedyn.bench.kernels.drive (the numba block loop): the same whole blocks, the same
     # output; frames after the last whole block are left alone; the elapsed time is positive.
     proc = Processor(algorithm, FS, 2, lookahead=2.0)
     x = noise_bursts(3, 1000, 2, FS) * np.float32(4.0)

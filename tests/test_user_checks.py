@@ -15,9 +15,10 @@ import pytest
 import livedyn
 from livedyn.algorithms.template import BODIES, template_text
 from livedyn.algorithms.user import UserAlgorithmError, load
+from livedyn.shipped import examples_folder
 
 ROOT = Path(__file__).resolve().parent.parent
-EXAMPLES = sorted((ROOT / "livedyn" / "examples").glob("*.py"))
+EXAMPLES = sorted(examples_folder().glob("*.py"))
 LIVEDYN = Path(sys.executable).parent / "livedyn"
 
 

@@ -2,7 +2,7 @@
 
 For every case and block size:
 
-1. **check**: the numba kernel and the twin (:mod:`bench.twins`) process the same seeded noise
+1. **check**: the numba kernel and the twin (:mod:`livedyn.bench.twins`) process the same seeded noise
    bursts block by block from identical fresh state; their outputs must agree within
    :data:`TOLERANCE`. A case whose twin disagrees gets no timings, only the mismatch.
 2. **numba**: an ``@njit`` driver calls the kernel block after block over a preallocated input, so
@@ -16,7 +16,7 @@ For every case and block size:
    reported as the extra microseconds per block over the numba-driven figure (median over the
    rounds of the difference to the numba-driven run just before it, under similar load).
 4. **twin**: the twin on a shorter signal, ns per frame, and the ratio twin / numba.
-5. **C**: the plain-C twin (:mod:`bench.ctwin`), compiled at bench time with the system C
+5. **C**: the plain-C twin (:mod:`livedyn.bench.ctwin`), compiled at bench time with the system C
    compiler, is checked against the numba kernel on the check signal (it is expected to be
    bit-identical) and timed from its own C block loop in every round, right after the numba
    run; ``numba/C`` is the ratio of the medians. Without a compiler the C columns are empty
@@ -102,7 +102,7 @@ def noise_bursts(seed, frames, channels, samplerate):
 
 
 def _ct():
-    """bench.ctwin, imported on first use (so that ``python -m bench.ctwin`` runs it once)."""
+    """livedyn.bench.ctwin, imported on first use (so that ``python -m livedyn.bench.ctwin`` runs it once)."""
     from . import ctwin
 
     return ctwin
@@ -308,7 +308,7 @@ class Timer:
         self.twin_ns.append((time.perf_counter_ns() - t0) / n)
 
     def attach_ctwin(self, lib):
-        """Also time the C twin (``lib``, a :class:`bench.ctwin.CTwin`) in every round."""
+        """Also time the C twin (``lib``, a :class:`livedyn.bench.ctwin.CTwin`) in every round."""
         self.c_lib = lib
         self.p_c, self.st_c, self.ring_c = self.s.fresh()
         self.out_c = np.zeros_like(self.s.x)
@@ -417,7 +417,7 @@ def run_kernels(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000
     progress : callable or None
         Receives progress messages (stderr by default).
     ctwin : bool
-        Also check and time the plain-C twin (:mod:`bench.ctwin`); compiled on first use. Where
+        Also check and time the plain-C twin (:mod:`livedyn.bench.ctwin`); compiled on first use. Where
         no C compiler exists its columns stay empty and the table says why.
 
     Returns
@@ -571,7 +571,7 @@ def run_ctwin(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, 
     """The numba kernels against their plain-C twins: check, time both, print a table.
 
     Each case runs from identical fresh state on the same seeded noise bursts. The C twin
-    (:mod:`bench.ctwin`) must agree with the numba kernel on the check signal (bit-identical is
+    (:mod:`livedyn.bench.ctwin`) must agree with the numba kernel on the check signal (bit-identical is
     expected; within :data:`TOLERANCE` is accepted and shown) and again over the whole timing
     signal. Timing: the numba kernel from an ``@njit`` block loop, the C twin from a C block
     loop in the same library as the clock; both loops read ``CLOCK_MONOTONIC`` around
@@ -600,8 +600,8 @@ def run_ctwin(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, 
         What to run.
     progress : callable or None
         Receives progress messages.
-    lib : bench.ctwin.CTwin, optional
-        The C twin (default: :func:`bench.ctwin.load`).
+    lib : livedyn.bench.ctwin.CTwin, optional
+        The C twin (default: :func:`livedyn.bench.ctwin.load`).
 
     Returns
     -------
@@ -801,7 +801,7 @@ def format_table(rows, info=None, repeats=None, c_note=None):
     if c_note:
         lines.append(f"C ns/fr, numba/C: {c_note}")
     else:
-        lines.append("C ns/fr: the plain-C twin (bench/ctwin/kernels.c) from a C block loop, "
+        lines.append("C ns/fr: the plain-C twin (livedyn/bench/ctwin/kernels.c) from a C block loop, "
                      "median; numba/C: ratio of the medians (numba = the column above).")
         bad = [f"{r['case']} {r['blocksize']}" for r in rows if r.get("c_check") == "MISMATCH"]
         if bad:

@@ -1,4 +1,4 @@
-"""``python -m bench kernels [--quick] [--json FILE] [--blocksize N ...]``: kernel cost table."""
+"""``python -m livedyn.bench kernels [--quick] [--json FILE] [--blocksize N ...]``: kernel cost table."""
 from __future__ import annotations
 
 import argparse
@@ -8,7 +8,7 @@ import sys
 
 def build_parser():
     ap = argparse.ArgumentParser(
-        prog="python -m bench",
+        prog="python -m livedyn.bench",
         description="livedyn measurement harness. 'kernels': check each built-in algorithm's "
                     "numba kernel against its plain-Python twin, then time both.")
     sub = ap.add_subparsers(dest="command", required=True)

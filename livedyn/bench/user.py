@@ -1,6 +1,6 @@
 """A user algorithm file's cost beside the built-in compressor (``bench kernels --algorithm``).
 
-Both run the same signal (seeded noise bursts, see :func:`bench.kernels.noise_bursts`) through
+Both run the same signal (seeded noise bursts, see :func:`livedyn.bench.kernels.noise_bursts`) through
 the same numba block driver, from fresh state, in interleaved rounds so that machine noise hits
 both alike; each figure is the median over the rounds of ns per frame.
 """

@@ -8,7 +8,7 @@ product, so that a full run stays within minutes on a 2-core machine:
 * 44.1, 48 and 96 kHz (stereo, block 64).
 
 Every row is checked against the Python twin (and the C twin where a compiler exists) before it
-is timed (bench.kernels.run_kernels). Each row also says how many instances would fit in one
+is timed (livedyn.bench.kernels.run_kernels). Each row also says how many instances would fit in one
 core at 70 % load: ``floor(0.7 * (1e9 / fs) / ns_per_frame)`` (common practice, no source: keep
 30 % of a core for the rest of the system).
 """
@@ -31,7 +31,7 @@ def instances_per_core(ns_per_frame, samplerate, share=CORE_SHARE):
 
 
 def run_sweep(quick=False, out=print, progress=None, ctwin=True):
-    """All three axes; returns the rows of bench.kernels.run_kernels with an ``axis`` and an
+    """All three axes; returns the rows of livedyn.bench.kernels.run_kernels with an ``axis`` and an
     ``instances_per_core`` key added."""
     from .kernels import run_kernels
 
