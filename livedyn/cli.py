@@ -36,14 +36,15 @@ def _check_target(path, option, protect=()):
         if other is not None and p.resolve() == Path(other).resolve():
             raise CliError(f"{option} {path}: is one of the command's audio or automation "
                            "files; choose another name")
-    if p.is_dir():
-        raise CliError(f"{option} {path}: is a directory, expected a file path")
-    if not p.parent.is_dir():
-        raise CliError(f"{option} {path}: folder {p.parent} does not exist")
+    from .files import target_problem
+
+    problem = target_problem(p)
+    if problem:
+        raise CliError(f"{option} {path}: {problem}")
 
 
 def _write_json(path, option, data):
-    from .presets import write_text_atomic
+    from .files import write_text_atomic
 
     try:
         write_text_atomic(path, json.dumps(data, indent=2, default=float) + "\n")
@@ -452,7 +453,7 @@ def _cmd_run(args):
         eng.error = failure
     eng.stop()
     if args.stats_json:
-        from .presets import write_text_atomic
+        from .files import write_text_atomic
 
         snap["realtime_granted"] = bool(server.realtime_granted) if server else None
         write_text_atomic(args.stats_json, json.dumps(snap, indent=2, default=float) + "\n")
@@ -475,11 +476,11 @@ def _cmd_run(args):
 
 def _has_key(setup):
     """Whether the algorithm a Setup names takes a key input (a preset's or the default)."""
-    from . import algorithms, presets
+    from . import loader, presets
     from .render import algorithm_of
 
     preset = presets.load(setup.preset) if setup.preset else None
-    return "key" in algorithms.get(algorithm_of(setup, preset)).schema
+    return "key" in loader.get(algorithm_of(setup, preset)).schema
 
 
 def _print_report(alg):
@@ -492,7 +493,7 @@ def _print_report(alg):
 
 
 def cmd_check(args):
-    from .algorithms.user import UserAlgorithmError, load
+    from .loader import UserAlgorithmError, load
 
     try:
         alg = load(args.file)
@@ -518,7 +519,7 @@ def cmd_bench(args):
 
     what = args.what
     result = {}
-    from .algorithms.user import is_user_file
+    from .loader import is_user_file
 
     user_file = is_user_file(args.algorithm)
     if user_file and what in ("kernels", "all"):

@@ -18,9 +18,10 @@ from pathlib import Path
 
 import numpy as np
 
-from . import algorithms
+from . import loader
 from . import presets as presets_mod
 from .automation import Automation, AutomationCursor
+from .files import write_text_atomic
 from .dsp.layout import TRACE_NAMES
 from .meters import MeterSet
 from .params import KEY_EXTERNAL, LEVEL_FLOOR_DB, P_KEY, ParamError
@@ -57,14 +58,14 @@ def algorithm_of(setup: Setup, preset=None) -> str:
     algo = setup.algorithm
     if preset is not None:
         if preset.algorithm_file is not None:
-            user = algorithms.get(str(preset.algorithm_file))
+            user = loader.get(str(preset.algorithm_file))
             preset.checked(user.schema)
             if algo and Path(algo).resolve() != Path(preset.algorithm_file).resolve():
                 raise RenderError(f"--algorithm {algo} conflicts with preset {setup.preset} "
                                   f"(algorithm_file {preset.algorithm_file}); give one")
             algo = str(preset.algorithm_file)
         else:
-            if algo and algorithms.get(algo).name != preset.algorithm:
+            if algo and loader.get(algo).name != preset.algorithm:
                 raise RenderError(
                     f"--algorithm {algo} conflicts with preset {setup.preset} "
                     f"(algorithm {preset.algorithm}); give one or make them agree")
@@ -82,7 +83,7 @@ def build_processor(setup: Setup, samplerate, channels, key_channels=0,
     raise RenderError.
     """
     preset = presets_mod.load(setup.preset) if setup.preset else None
-    proc = Processor(algorithm_of(setup, preset), samplerate, channels,
+    proc = Processor(loader.get(algorithm_of(setup, preset)), samplerate, channels,
                      key_channels=key_channels)
     if key_channels and "key" not in proc.schema:
         raise RenderError(f"--key: the {proc.algorithm.name} has no key input; leave out "
@@ -215,7 +216,7 @@ class _TraceWriter:
         for w in self.writers.values():
             w.close()
         text = json.dumps(info, indent=2, default=float)
-        presets_mod.write_text_atomic(self.folder / "trace.json", text + "\n")
+        write_text_atomic(self.folder / "trace.json", text + "\n")
 
     def abort(self):
         for w in self.writers.values():

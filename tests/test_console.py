@@ -883,7 +883,7 @@ def test_a_swapped_in_version_and_its_notices_reach_the_console(tmp_path):
     v2 = tmp_path / "mine2.py"
     v2.write_text("PARAMS = ['threshold', 'attack', 'release', Param('depth', 'dB', 0, 30, 9)]\n"
                   "def gain_curve(x, p):\n    return max(-p[P.depth], min(0.0, p[P.threshold] - x))\n")
-    new = livedyn.Processor(str(v2), FS, 2, threshold=-25)
+    new = livedyn.Processor(livedyn.load_algorithm(v2), FS, 2, threshold=-25)
     e.proc = new
     e.notices.append(("info", "mine.py: version 2 running (loaded, checked and swapped in)"))
     m.tick()

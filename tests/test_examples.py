@@ -22,7 +22,7 @@ import pytest
 from scipy import signal
 
 import livedyn
-from livedyn.algorithms.user import load
+from livedyn.loader import load
 from livedyn.dsp import layout as L
 from livedyn.shipped import examples_folder
 

@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 
 import livedyn
-from livedyn.algorithms.user import load
+from livedyn.loader import load
 from livedyn.engine import callback as cb
 from livedyn.engine.engine import ArraySource, Engine
 from livedyn.engine.watch import FileWatcher

@@ -14,7 +14,7 @@ import pytest
 
 import livedyn
 from livedyn.algorithms.template import BODIES, template_text
-from livedyn.algorithms.user import UserAlgorithmError, load
+from livedyn.loader import UserAlgorithmError, load
 from livedyn.shipped import examples_folder
 
 ROOT = Path(__file__).resolve().parent.parent

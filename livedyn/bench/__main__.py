@@ -1,4 +1,9 @@
-"""``python -m livedyn.bench kernels [--quick] [--json FILE] [--blocksize N ...]``: kernel cost table."""
+"""``python -m livedyn.bench kernels|ctwin [--quick] ...``: the kernel cost tables.
+
+``kernels``: each built-in kernel against its plain-Python twin (and the plain-C twin where a
+compiler exists); ``ctwin``: the numba kernels against the plain-C twins alone, both timed from
+native block loops. ``livedyn bench`` runs the same harness with the live runs besides.
+"""
 from __future__ import annotations
 
 import argparse
@@ -25,11 +30,35 @@ def build_parser():
     k.add_argument("--samplerate", type=float, default=48000.0, help="Hz (default 48000)")
     k.add_argument("--seconds", type=float, default=None,
                    help="length of the timing signal (default 4, --quick 1)")
+    c = sub.add_parser(
+        "ctwin", help="numba kernels against their plain-C twins",
+        description="Compile the plain-C twins of the fused kernels, check that they agree "
+                    "with the numba kernels bit for bit, and time both from native block loops.")
+    c.add_argument("--quick", action="store_true", help="fewer repeats, shorter signals")
+    c.add_argument("--blocksize", metavar="N", type=int, action="append",
+                   help="frames per block; repeat for several (default 64 and 1024)")
+    c.add_argument("--repeats", type=int, default=None, help="timed rounds (default 15)")
+    c.add_argument("--seconds", type=float, default=None,
+                   help="length of the timing signal in s (default 4)")
     return ap
+
+
+def _ctwin(args):
+    from .kernels import run_ctwin
+
+    try:
+        rows = run_ctwin(quick=args.quick, blocksizes=tuple(args.blocksize or (64, 1024)),
+                         repeats=args.repeats, seconds=args.seconds)
+    except ValueError as exc:
+        print(f"bench ctwin: {exc}", file=sys.stderr)
+        return 2
+    return 1 if any(r["c_check"] == "MISMATCH" for r in rows) else 0
 
 
 def main(argv=None):
     args = build_parser().parse_args(argv)
+    if args.command == "ctwin":
+        return _ctwin(args)
     from .kernels import machine_info, report, run_kernels
 
     before = machine_info()

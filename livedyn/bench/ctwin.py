@@ -25,7 +25,7 @@ is the numba twin of that driver (an ``@njit`` loop that calls the numba kernel 
 as the live callback will, and reads the same clock through the same C function), so that both
 figures cover the same work and nothing else.
 
-``python -m livedyn.bench.ctwin`` runs :func:`livedyn.bench.kernels.run_ctwin` and prints its table.
+``python -m livedyn.bench ctwin`` runs :func:`livedyn.bench.kernels.run_ctwin` and prints its table.
 """
 from __future__ import annotations
 
@@ -349,32 +349,3 @@ def numba_drive_timed(twin, kernel, x, key, out, p, st, ring, tr, blocksize):
 
         _NUMBA_TIMED[twin.path] = timed
     return int(_NUMBA_TIMED[twin.path](kernel, x, key, out, p, st, ring, tr, int(blocksize)))
-
-
-def main(argv=None):
-    """``python -m livedyn.bench.ctwin [--quick]``: numba kernel vs C twin table."""
-    import argparse
-
-    ap = argparse.ArgumentParser(
-        prog="python -m livedyn.bench.ctwin",
-        description="Compile the plain-C twins of the fused kernels, check that they agree "
-                    "with the numba kernels bit for bit, and time both from native block loops.")
-    ap.add_argument("--quick", action="store_true", help="fewer repeats, shorter signals")
-    ap.add_argument("--blocksize", metavar="N", type=int, action="append",
-                    help="frames per block; repeat for several (default 64 and 1024)")
-    ap.add_argument("--repeats", type=int, default=None, help="timed rounds (default 15)")
-    ap.add_argument("--seconds", type=float, default=None, help="timing signal (default 4 s)")
-    args = ap.parse_args(argv)
-    from .kernels import run_ctwin
-
-    try:
-        rows = run_ctwin(quick=args.quick, blocksizes=tuple(args.blocksize or (64, 1024)),
-                         repeats=args.repeats, seconds=args.seconds)
-    except ValueError as exc:
-        print(f"livedyn.bench.ctwin: {exc}", file=sys.stderr)
-        return 2
-    return 1 if any(r["c_check"] == "MISMATCH" for r in rows) else 0
-
-
-if __name__ == "__main__":
-    sys.exit(main())

@@ -102,7 +102,7 @@ def noise_bursts(seed, frames, channels, samplerate):
 
 
 def _ct():
-    """livedyn.bench.ctwin, imported on first use (so that ``python -m livedyn.bench.ctwin`` runs it once)."""
+    """livedyn.bench.ctwin, imported on first use (it builds nothing until asked)."""
     from . import ctwin
 
     return ctwin

@@ -595,9 +595,9 @@ class Engine:
         old version's code and state stay alive until that echo. Returns a dict of what
         happened; raises EngineError when the stream stops (no block for ``stall_seconds``)
         before the callback confirms the switch."""
-        from .. import algorithms
+        from .. import loader
 
-        alg = algorithms.get(algorithm)
+        alg = loader.get(algorithm)
         with self._lock:
             if self.stream is None or self.error is not None:
                 raise EngineError("swap: the stream is not running")
@@ -798,7 +798,7 @@ class Engine:
         if self._swaps_recorded:  # which version ran from which frame
             lines = [f"{f} {a.source or a.name} {a.digest}".rstrip()
                      for f, a in [(0, self._first_alg)] + self._swaps_recorded]
-            from ..presets import write_text_atomic
+            from ..files import write_text_atomic
 
             write_text_atomic(self.record_dir / "versions.txt",
                               "# FRAME ALGORITHM (file or name) CONTENT HASH\n"

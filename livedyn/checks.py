@@ -1,5 +1,8 @@
 """Load-time checks of a user algorithm, on test signals livedyn synthesises.
 
+They run the compiled file through a :class:`~livedyn.processor.Processor`, so they sit above
+it; :mod:`livedyn.loader` calls them after :mod:`livedyn.algorithms.user` has compiled a file.
+
 In order, each reported as one line (``Algorithm.report``):
 
 1. bounds: every stage of the file is compiled again with bounds checking on and run on test
@@ -29,7 +32,8 @@ import time
 
 import numpy as np
 
-from .user import STAGES, UserAlgorithmError, jit_of
+from .algorithms.user import STAGES, UserAlgorithmError, jit_of
+from .processor import Processor
 
 MAX_SHARE = 0.25  # of one core's real time, per instance (x2 during a swap's crossfade)
 INVARIANCE_TOL = 1e-6
@@ -63,8 +67,6 @@ def test_programme(fs=FS, channels=2, seed=1):
 
 def check_algorithm(alg, samplerate=FS):
     """Run every check; return ``alg`` with its report, or raise UserAlgorithmError."""
-    from ..processor import Processor
-
     path = alg.source
     lines = [f"compiles in nopython mode: {', '.join(alg.stages)}"]
     x, key = test_programme(samplerate)
@@ -204,8 +206,6 @@ def _boost(alg, proc, x, y, gain_db, fs):
 
 def _bounds_pass(alg, x, key, fs):
     """Run each stage compiled with bounds checking on; an IndexError refuses the file."""
-    from ..processor import Processor
-
     path = alg.source
     mod = alg.module
 
@@ -226,7 +226,7 @@ def _bounds_pass(alg, x, key, fs):
                 checked[stage] = jit_of(getattr(mod, stage), boundscheck=True)
                 checked[stage].compile(_stage_sig(stage, ns))
             except Exception as e:  # pragma: no cover (it compiled a moment ago without)
-                from .user import compile_error
+                from .algorithms.user import compile_error
 
                 raise compile_error(path, stage, e) from None
     finally:
@@ -322,8 +322,6 @@ def _allocates(alg):
 
 def time_per_frame(alg, fs=FS, channels=2, block=1024, seconds=0.5, repeats=5):
     """Median ns per frame of the algorithm's kernel on noise, called at ``block`` frames."""
-    from ..processor import Processor
-
     proc = Processor(alg, fs, channels)
     rng = np.random.default_rng(3)
     n = int(seconds * fs) // block * block
