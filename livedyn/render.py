@@ -99,6 +99,7 @@ def build_processor(setup: Setup, samplerate, channels, key_channels=0,
                     continue  # no key input here: stay on the main input
             proc.set(name, v)
     for name, value in setup.settings:
+        name = proc.schema.resolve(name)  # a unique prefix, as at the console
         proc.set(name, value)
         if name == "key":
             wants_external = int(proc.p[P_KEY]) == KEY_EXTERNAL

@@ -530,14 +530,7 @@ class Engine:
     def set(self, name, value):
         """Set a parameter; it reaches the callback at its next block. Returns the sequence."""
         with self._lock:
-            prm = self.proc.schema[name]
-            v = prm.parse(value)
-            trial = self.pend.copy()
-            trial[prm.slot] = v
-            self.proc._check_combination(trial)
-            if prm.name in ("key_lpf", "key_bpf") and v >= self.fs / 2:
-                raise ParamError(f"{prm.name} = {v:g} Hz: must be below half the sample rate "
-                                 f"({self.fs / 2:g} Hz)")
+            prm, v = self.proc.validate(name, value, self.pend)
             self.pend[prm.slot] = v
             seq = int(cb.publish_params(self.ud, self.pend))
             self._changes.append((seq, prm.name, v))
@@ -575,7 +568,7 @@ class Engine:
         trial = self.pend.copy()
         for n, v in pr.values.items():
             trial[self.proc.schema[n].slot] = self.proc.schema[n].check(v)
-        self.proc._check_combination(trial)
+        self.proc.check_combination(trial)
         for n, v in pr.values.items():
             if self.pend[self.proc.schema[n].slot] != v:
                 self.set(n, v)
