@@ -224,6 +224,11 @@ class _TraceWriter:
             w.abort()
 
 
+#: Suffixes ``render`` writes under: WAV data under any other name would mislead every program
+#: that goes by the name (FLAC and the rest are refused, not written as WAV).
+OUT_SUFFIXES = (".wav", ".wave")
+
+
 def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None, trace_dir=None,
            blocksize=DEFAULT_BLOCKSIZE, keep_latency=False, subtype=None,
            progress_min_seconds=30.0, safety_ceiling_db=None) -> Summary:
@@ -238,6 +243,10 @@ def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None,
     """
     if isinstance(blocksize, bool) or int(blocksize) != blocksize or not 1 <= blocksize <= 65536:
         raise RenderError(f"--blocksize {blocksize!r}: expected a whole number from 1 to 65536")
+    suffix = Path(out_path).suffix
+    if suffix.lower() not in OUT_SUFFIXES:
+        raise RenderError(f"--out {out_path}: livedyn writes WAV (RF64 past 4 GiB), expected a "
+                          f"name ending in .wav, not {suffix or 'no suffix'}")
     blocksize = int(blocksize)
     others = ((in_path, "input"), (key_path, "key"), (automation_path, "automation"))
     for other, what in others:

@@ -24,6 +24,7 @@ from livedyn.dsp import layout as L
 from livedyn.dsp import stages as S
 from livedyn.params import ParamError
 from livedyn.processor import Processor
+from tests.kernel_cases import LIMITER_CASES, LIMITER_IDS
 
 FS = 48000
 
@@ -154,19 +155,7 @@ def test_c_twin_matches_other_laws(lib, algorithm, settings, key_channels):
              signal="sweep", trace=False)
 
 
-@pytest.mark.parametrize("settings,schedule", [
-    (dict(true_peak="on"), None),
-    (dict(link="none", hold=4.0, release=20.0), None),
-    (dict(attack=0.0, lookahead=1.0, ceiling=-12.0), None),
-    (dict(lookahead=5.0), {4: dict(true_peak="on"), 9: dict(lookahead=8.0, attack=3.0),
-                           13: dict(lookahead=3.0), 16: dict(ceiling=-6.0),
-                           22: dict(attack=1.0, true_peak="off")}),
-    (dict(lookahead=2.0, release=20.0), {3: dict(link="none"), 9: dict(link="max"),
-                                           12: dict(true_peak="on"), 13: dict(link="none"),
-                                           15: dict(true_peak="off", lookahead=0.1),
-                                           20: dict(link="max", lookahead=0.0),
-                                           21: dict(true_peak="on")}),
-], ids=["true-peak", "link-none+hold", "attack-0", "changes-mid-stream", "link-and-true-peak"])
+@pytest.mark.parametrize("settings,schedule", LIMITER_CASES, ids=LIMITER_IDS)
 def test_c_twin_matches_limiter(lib, settings, schedule):
     # Reference: the numba kernel limiter_block. 4400 frames > SUM_REFRESH (the exact re-sum of
     # the moving average is crossed); +18 dB so that the ceiling is at work when settings change.

@@ -29,7 +29,9 @@ def build_parser():
     k.add_argument("--channels", type=int, default=2, help="main channels (default 2)")
     k.add_argument("--samplerate", type=float, default=48000.0, help="Hz (default 48000)")
     k.add_argument("--seconds", type=float, default=None,
-                   help="length of the timing signal (default 4, --quick 1)")
+                   help="length of the timing signal in s (default 4, --quick 1)")
+    k.add_argument("--wide", action="store_true",
+                   help="every column (the default table fits 100 columns)")
     c = sub.add_parser(
         "ctwin", help="numba kernels against their plain-C twins",
         description="Compile the plain-C twins of the fused kernels, check that they agree "
@@ -65,7 +67,7 @@ def main(argv=None):
     blocksizes = tuple(args.blocksize) if args.blocksize else (64, 1024)
     try:
         rows = run_kernels(quick=args.quick, blocksizes=blocksizes, channels=args.channels,
-                           samplerate=args.samplerate, seconds=args.seconds)
+                           samplerate=args.samplerate, seconds=args.seconds, wide=args.wide)
     except ValueError as exc:
         print(f"bench kernels: {exc}", file=sys.stderr)
         return 2

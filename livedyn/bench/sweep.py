@@ -30,7 +30,7 @@ def instances_per_core(ns_per_frame, samplerate, share=CORE_SHARE):
     return int(math.floor(share * (1e9 / samplerate) / ns_per_frame))
 
 
-def run_sweep(quick=False, out=print, progress=None, ctwin=True):
+def run_sweep(quick=False, out=print, progress=None, ctwin=True, wide=False):
     """All three axes; returns the rows of livedyn.bench.kernels.run_kernels with an ``axis`` and an
     ``instances_per_core`` key added."""
     from .kernels import run_kernels
@@ -44,7 +44,7 @@ def run_sweep(quick=False, out=print, progress=None, ctwin=True):
                  for r in RATES if r != 48000]
     rows = []
     for axis, kw in plan:
-        got = run_kernels(quick=quick, out=out, ctwin=ctwin,
+        got = run_kernels(quick=quick, out=out, ctwin=ctwin, wide=wide,
                           seconds=(0.5 if quick else 1.5), **kw,
                           **({} if progress is None else {"progress": progress}))
         for r in got:
