@@ -8,9 +8,10 @@ Sources of the checks
 * Static curve: Giannoulis, Massberg and Reiss, JAES 60(6) 2012, eq. (4), through the
   independent implementation in ``tests/reference.py``.
 * One-pole step response ``1 - exp(-t / tau)``: 63.2 % at ``t = tau`` and a 10-90 % rise of
-  ``tau ln 9 = 2.197 tau`` (house plan, section 4; the arithmetic is done here).
-* Latency: an impulse comes out ``round(lookahead * fs)`` samples later (house plan, section 4:
-  latency is reported, never hidden) - the reported and the measured value must agree.
+  ``tau ln 9 = 2.197 tau`` (README, "Parameters"; the arithmetic is done here).
+* Latency: an impulse comes out ``round(lookahead * fs)`` samples later (DEVELOPERS.md,
+  "Conventions the tests rely on": latency is reported, never hidden) - the reported and the
+  measured value must agree.
 * THD of a low tone falls as release gets longer: common practice, no source.
 """
 from __future__ import annotations

@@ -828,7 +828,7 @@ def test_quit_after_and_problems_from_check():
 
 def test_model_on_a_real_engine():
     if shutil.which("jackd") is None:
-        pytest.skip("jackd is not installed (see HOUSE.md section 5)")
+        pytest.skip("jackd is not installed (DEVELOPERS.md, Real time without a soundcard)")
     from livedyn.engine import stream as st
     from livedyn.engine.engine import ArraySource, Engine
     from livedyn.engine.jackserver import JackServer

@@ -1,23 +1,24 @@
 """The live engine on a headless JACK server: output, timing, handoff, routing, safety, errors.
 
 Each test that streams starts its own JACK server with the dummy backend (``jack_server`` in
-tests/conftest.py): a real, clock-paced PortAudio device without a soundcard (house plan,
-section 5).
+tests/conftest.py): a real, clock-paced PortAudio device without a soundcard (DEVELOPERS.md,
+"Real time without a soundcard").
 
 Sources of the checks
 ---------------------
-* Live equals offline: the house plan's own contract (section 3: one Processor, live or in
-  render; the recorded automation replays exactly) - the reference is livedyn.render run over
-  the live recording, compared sample for sample.
-* No call that takes the interpreter lock or allocates in the callback's compiled code: house
-  plan section 3; the check reads the LLVM IR numba emits (numba's cfunc wrapper and calling
-  convention as found in numba 0.68's output, see ``IRModule``).
+* Live equals offline: the project's own contract (DEVELOPERS.md, "Conventions the tests rely on":
+  one Processor, live or in render; the recorded automation replays exactly) - the reference is
+  livedyn.render run over the live recording, compared sample for sample.
+* No call that takes the interpreter lock or allocates in the callback's compiled code:
+  DEVELOPERS.md, "The live engine" (rules for the callback path); the check reads the LLVM IR numba
+  emits (numba's cfunc wrapper and calling convention as found in numba 0.68's output, see
+  ``IRModule``).
 * Late and overrun blocks: a block is late when its callback starts more than 1.5 periods after
   the previous one, or runs longer than one period (engine/callback.py's definition; common
   practice, no source).
 * Ducking depth: the ducker attenuates by at most ``range`` dB while the key is far above
   threshold (livedyn.algorithms' ducker definition with ratio inf; common practice, no source).
-* Safety stage: a non-finite sample mutes its block, the ceiling clips (house plan section 3).
+* Safety stage: a non-finite sample mutes its block, the ceiling clips (README, "Cautions").
 """
 from __future__ import annotations
 
