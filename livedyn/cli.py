@@ -524,7 +524,7 @@ def cmd_check(args):
 def cmd_new_algorithm(args):
     from .algorithms.template import write_template
 
-    path = write_template(args.name, stage=args.stage)
+    path = write_template(args.name, stage=args.stage, example=args.example)
     print(f"wrote {path}: try it with  livedyn run --headless --key-demo --algorithm {path} "
           f"--watch")
     return 0
@@ -802,6 +802,9 @@ def build_parser():
     na.add_argument("--stage", choices=["gain_curve", "detector", "smoother", "kernel"],
                     default="gain_curve",
                     help="which stage the file starts with (default gain_curve)")
+    na.add_argument("--example", metavar="EXAMPLE",
+                    help="start from a copy of a shipped example instead: loudness_ducker, "
+                         "program_release or speech_key (default none)")
     na.set_defaults(func=cmd_new_algorithm)
 
     dv = sub.add_parser("devices", help="list audio devices", description="List audio devices.")

@@ -320,7 +320,7 @@ def _from_doc(doc: dict, path: Path, text: str) -> Preset:
         # the file's own schema when it loads (its own parameters included); otherwise check
         # against livedyn's parameters and leave the file's errors to whoever runs it
         try:
-            from .loader import load  # the loader sits above presets' schema use
+            from .loader import load  # lazy: compiling a file pulls in numba
 
             user = load(algorithm_file)
             schema, alg_name = user.schema, user.name

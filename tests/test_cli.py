@@ -289,6 +289,20 @@ def test_render_refuses_an_output_that_is_not_wav(tmp_path, capsys, name):
     assert rc == 0 and sf.info(str(tmp_path / "o.WAV")).format in ("WAV", "WAVEX", "RF64")
 
 
+def test_new_algorithm_copies_a_shipped_example(tmp_path, capsys):
+    from livedyn.shipped import examples_folder
+
+    rc, out, err = run(["new-algorithm", tmp_path / "mine", "--example", "program_release"],
+                       capsys)
+    assert rc == 0, err
+    assert (tmp_path / "mine.py").read_bytes() == \
+        (examples_folder() / "program_release.py").read_bytes()
+    rc, out, err = run(["new-algorithm", tmp_path / "other", "--example", "nope"], capsys)
+    assert_one_line_error(rc, err)
+    assert "expected one of loudness_ducker, program_release, speech_key" in err
+    assert not (tmp_path / "other.py").exists()
+
+
 def test_no_command_prints_help_and_exits_2(capsys):
     rc, out, _ = run([], capsys)
     assert rc == 2 and "render" in out

@@ -166,3 +166,8 @@ def test_new_algorithm_then_check(installed):
     assert (here / "x.py").is_file() and "wrote x.py" in r.stdout
     r = _timed(installed, "check x.py", [installed.livedyn, "check", "x.py"], here)
     assert "checks passed" in r.stdout and "time per frame" in r.stdout
+    # a shipped example, copied out of the package data
+    _run([installed.livedyn, "new-algorithm", "mine", "--example", "speech_key"], here,
+         installed.env)
+    text = (here / "mine.py").read_text()
+    assert "def detector" in text and "def gain_curve" in text
