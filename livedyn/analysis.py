@@ -319,7 +319,7 @@ def render_with(algorithm, samplerate, channels, key_channels, values, main, key
     Parameters
     ----------
     algorithm : str or Algorithm
-        A built-in name or a loaded Algorithm.
+        A built-in name, an algorithm file ``FILE.py`` or a loaded Algorithm.
     values : dict
         Parameter name -> value. Values are set in passes until none is refused (a value may
         be valid only once another is set, such as a key filter's frequency after the key);
@@ -332,10 +332,11 @@ def render_with(algorithm, samplerate, channels, key_channels, values, main, key
     numpy.ndarray
         The processed main signal, float32 (frames, channels).
     """
+    from .loader import get
     from .params import KEY_EXTERNAL, ParamError
     from .processor import Processor
 
-    p = Processor(algorithm, samplerate, channels, key_channels)
+    p = Processor(get(algorithm), samplerate, channels, key_channels)
     values = dict(values)
     progress = True
     errors = {}

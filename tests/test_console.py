@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 
 import livedyn
-from livedyn import presets
+from livedyn import loader, presets
 from livedyn.console import commands as cmds
 from livedyn.console.model import (
     COARSE_FACTOR, FINE_FACTOR, LOG_FLOOR, RATIO_TOP, ConsoleModel, step_value,
@@ -37,7 +37,8 @@ class FakeEngine:
     """The Engine control surface over a real Processor, recording set() calls."""
 
     def __init__(self, algorithm="compressor", channels=2, key_channels=0, **params):
-        self.proc = livedyn.Processor(algorithm, FS, channels, key_channels, **params)
+        self.proc = livedyn.Processor(loader.get(algorithm), FS, channels, key_channels,
+                                      **params)
         self.calls = []
         self.seq = 0
         self.bypassed = self.muted = False
