@@ -373,6 +373,10 @@ def test_run_ctwin_rows_and_table(lib):
         assert r["numba_over_c"] == pytest.approx(r["numba_ns_per_frame"] / r["c_ns_per_frame"])
     text = "\n".join(lines)
     assert "numba/C" in text and all(c.name in text for c in CASES)
+    # the default table fits 100 columns; --wide adds the spreads
+    assert max(len(ln) for ln in lines if not ln.startswith(("CPU:", "C:"))) <= bk.NARROW
+    wide = bk.format_ctwin_table(rows, wide=True)
+    assert "[min-max]" in wide[2] and "[min-max]" not in text
 
 
 def test_run_kernels_has_c_columns(lib):

@@ -42,6 +42,8 @@ def build_parser():
     c.add_argument("--repeats", type=int, default=None, help="timed rounds (default 15)")
     c.add_argument("--seconds", type=float, default=None,
                    help="length of the timing signal in s (default 4)")
+    c.add_argument("--wide", action="store_true",
+                   help="also the [min-max] spreads (the default table fits 100 columns)")
     return ap
 
 
@@ -50,7 +52,7 @@ def _ctwin(args):
 
     try:
         rows = run_ctwin(quick=args.quick, blocksizes=tuple(args.blocksize or (64, 1024)),
-                         repeats=args.repeats, seconds=args.seconds)
+                         repeats=args.repeats, seconds=args.seconds, wide=args.wide)
     except ValueError as exc:
         print(f"bench ctwin: {exc}", file=sys.stderr)
         return 2

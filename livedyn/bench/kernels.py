@@ -569,7 +569,7 @@ class CPair:
 
 def run_ctwin(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, seconds=None,
               out=print, *, repeats=None, check_seconds=CHECK_SECONDS, cases=CASES,
-              progress=_stderr, lib=None):
+              progress=_stderr, lib=None, wide=False):
     """The numba kernels against their plain-C twins: check, time both, print a table.
 
     Each case runs from identical fresh state on the same seeded noise bursts. The C twin
@@ -660,13 +660,14 @@ def run_ctwin(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, 
         for row, pr in pairs:
             row.update(pr.result())
     if out is not None:
-        for line in format_ctwin_table(rows, info, lib, note):
+        for line in format_ctwin_table(rows, info, lib, note, wide=wide):
             out(line)
     return rows
 
 
-def format_ctwin_table(rows, info=None, lib=None, note=None):
-    """The rows of :func:`run_ctwin` as lines of a text table."""
+def format_ctwin_table(rows, info=None, lib=None, note=None, wide=False):
+    """The rows of :func:`run_ctwin` as lines of a text table (:data:`NARROW` columns; with
+    ``wide`` also the [min-max] spreads)."""
     lines = []
     if info is not None:
         load = info.get("load_average_1_5_15")
@@ -677,9 +678,14 @@ def format_ctwin_table(rows, info=None, lib=None, note=None):
     if rows:
         r0 = rows[0]
         lines.append(f"{r0['channels']} ch, {r0['samplerate']:g} Hz; ns per frame (all channels), "
-                     f"median [min-max] of {r0['repeats'] or '-'} interleaved runs each")
-    head = (f"{'case':<22}{'block':>6}  {'check':<14}{'numba ns/fr':>12} {'[min-max]':<14}"
-            f"{'C ns/fr':>9} {'[min-max]':<14}{'numba/C':>8}{'of minima':>10}{'paired':>8}")
+                     f"median{' [min-max]' if wide else ''} of {r0['repeats'] or '-'} "
+                     "interleaved runs each")
+    if wide:
+        head = (f"{'case':<22}{'block':>6}  {'check':<14}{'numba ns/fr':>12} {'[min-max]':<14}"
+                f"{'C ns/fr':>9} {'[min-max]':<14}{'numba/C':>8}{'of minima':>10}{'paired':>8}")
+    else:
+        head = (f"{'case':<22}{'block':>6}  {'check':<14}{'numba ns/fr':>12}{'C ns/fr':>9}"
+                f"{'numba/C':>8}{'of minima':>10}{'paired':>8}")
     lines.append(head)
     lines.append("-" * len(head))
     for r in rows:
@@ -695,12 +701,18 @@ def format_ctwin_table(rows, info=None, lib=None, note=None):
             continue
         ns = f"[{r['numba_ns_min']:.1f}-{r['numba_ns_max']:.1f}]"
         cs = f"[{r['c_ns_min']:.1f}-{r['c_ns_max']:.1f}]"
-        lines.append(
-            f"{r['case']:<22}{r['blocksize']:>6}  {chk:<14}{r['numba_ns_per_frame']:>12.1f} "
-            f"{ns:<14}{r['c_ns_per_frame']:>9.1f} {cs:<14}{r['numba_over_c']:>8.2f}"
-            f"{r['numba_over_c_of_minima']:>10.2f}{r['numba_over_c_paired']:>8.2f}")
-    lines.append("numba/C: ratio of the medians; of minima: of the fastest runs; paired: median "
-                 "of the per-round ratios (numba and C run back to back).")
+        ratios = (f"{r['numba_over_c']:>8.2f}{r['numba_over_c_of_minima']:>10.2f}"
+                  f"{r['numba_over_c_paired']:>8.2f}")
+        if wide:
+            lines.append(
+                f"{r['case']:<22}{r['blocksize']:>6}  {chk:<14}{r['numba_ns_per_frame']:>12.1f} "
+                f"{ns:<14}{r['c_ns_per_frame']:>9.1f} {cs:<14}{ratios}")
+        else:
+            lines.append(
+                f"{r['case']:<22}{r['blocksize']:>6}  {chk:<14}{r['numba_ns_per_frame']:>12.1f}"
+                f"{r['c_ns_per_frame']:>9.1f}{ratios}")
+    lines.append("numba/C: ratio of the medians; of minima: of the fastest runs; paired: median")
+    lines.append("  of the per-round ratios (numba and C run back to back).")
     if any(r["c_driver_identical"] is False for r in rows):
         lines.append("*: outputs or states differed over the whole timing signal.")
     return lines
