@@ -56,4 +56,8 @@ def __getattr__(name):
         from .processor import Processor
 
         return Processor
+    if name == "load_algorithm":
+        from .loader import load
+
+        return load
     raise AttributeError(name)

@@ -1,8 +1,11 @@
-"""Measurements of a configured processor: static curve, attack/release, latency, distortion.
+"""Measurements of a configured processor: static curve, attack/release, latency, distortion;
+and level matching of two settings.
 
 Each measurement builds fresh processors from a factory (``make() -> Processor``), feeds test
 signals synthesised here, and returns plain rows; :func:`plot` draws them when matplotlib is
-installed (the ``plot`` extra).
+installed (the ``plot`` extra). :func:`level_match` processes one input with several settings
+offline and trims them to the same BS.1770-4 loudness (the console's ``match``; a script can
+call it as well).
 """
 from __future__ import annotations
 
@@ -12,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .dsp import stages
+from .dsp.loudness import ABS_GATE_LUFS  # BS.1770-4's absolute gate: below it, nothing to match
 from .params import LAW_COMPRESSOR, LAW_DUCKER, LAW_EXPANDER, LAW_GATE, LAW_USER, ratio_to_slope
 
 
@@ -473,3 +477,120 @@ def plot(kind, rows, path, title="", x_label="input level, dBFS"):
     fig.tight_layout()
     fig.savefig(path)
     plt.close(fig)
+
+
+# ---- level matching --------------------------------------------------------------------------
+
+
+
+class LevelMatchError(ValueError):
+    """A level match that cannot be made; the message is one line."""
+
+
+@dataclass
+class LevelMatch:
+    """Two settings of one algorithm measured on the same input.
+
+    Attributes
+    ----------
+    loudness : dict
+        Setting name -> integrated loudness of its output, LUFS (ITU-R BS.1770-4).
+    trims : dict
+        Setting name -> gain to add to its makeup, dB: 0 for the quieter one and minus the
+        difference for the louder one, so that both play equally loud.
+    seconds : float
+        Length of the input measured.
+    """
+
+    loudness: dict
+    trims: dict
+    seconds: float
+
+
+def render_with(algorithm, samplerate, channels, key_channels, values, main, key=None):
+    """Process ``main`` (and ``key``) offline through a fresh Processor holding ``values``.
+
+    Parameters
+    ----------
+    algorithm : str or Algorithm
+        A built-in name, an algorithm file ``FILE.py`` or a loaded Algorithm.
+    values : dict
+        Parameter name -> value. Values are set in passes until none is refused (a value may
+        be valid only once another is set, such as a key filter's frequency after the key);
+        the first refusal left is raised as ParamError.
+    main, key : numpy.ndarray
+        float32 (frames, channels) and (frames, key channels), or key None.
+
+    Returns
+    -------
+    numpy.ndarray
+        The processed main signal, float32 (frames, channels).
+    """
+    from .loader import get
+    from .params import KEY_EXTERNAL, ParamError
+    from .processor import Processor
+
+    p = Processor(get(algorithm), samplerate, channels, key_channels)
+    values = dict(values)
+    progress = True
+    errors = {}
+    while values and progress:
+        progress = False
+        for n in list(values):
+            try:
+                p.set(n, values[n])
+            except ParamError as e:
+                errors[n] = e
+                continue
+            del values[n]
+            progress = True
+    if values:
+        raise errors[next(iter(values))]
+    if "key" in p.schema and int(p.get("key")) == KEY_EXTERNAL and key is None:
+        raise LevelMatchError("the key input is needed (key = external) but no key signal "
+                              "was given")
+    return p.process(main, key if p.key_channels else None)
+
+
+def level_match(algorithm, samplerate, channels, key_channels, settings, main, key=None):
+    """Measure several settings of one algorithm on the same input and trim them to match.
+
+    Each setting's values process ``main`` (and ``key``) offline (:func:`render_with`); the
+    integrated loudness of each output is measured with ITU-R BS.1770-4
+    (:func:`livedyn.meters.integrated_loudness`), and each setting gets the trim that brings it
+    down to the quietest one.
+
+    Parameters
+    ----------
+    settings : dict
+        Setting name (e.g. ``"a"``, ``"b"``) -> dict of parameter values.
+
+    Returns
+    -------
+    LevelMatch
+
+    Raises
+    ------
+    LevelMatchError
+        An output measures below BS.1770's absolute gate (nothing to match), or a key is
+        needed and missing. ParamError for a refused value.
+
+    References
+    ----------
+    .. [1] ITU-R BS.1770-4, "Algorithms to measure audio programme loudness and true-peak
+       audio level", 2015: K-weighting, gating (section 5.1), integrated loudness.
+    """
+    from .meters import integrated_loudness
+
+    loud = {}
+    for name, values in settings.items():
+        y = render_with(algorithm, samplerate, channels, key_channels, values, main, key)
+        loud[name] = float(integrated_loudness(y, samplerate))
+    quiet = [str(s).upper() for s, v in loud.items() if not v > ABS_GATE_LUFS]
+    if quiet:
+        raise LevelMatchError(f"slot {' and '.join(quiet)} measures below the "
+                              f"{ABS_GATE_LUFS:g} LUFS gate of BS.1770 on the recent input; "
+                              "play something and try again")
+    low = min(loud.values())
+    trims = {s: 0.0 - (v - low) for s, v in loud.items()}  # 0.0 - x: no "-0.0"
+    return LevelMatch(loud, trims, len(main) / float(samplerate))

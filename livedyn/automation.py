@@ -43,7 +43,7 @@ from pathlib import Path
 import numpy as np
 
 from .params import ParamError, Schema, ratio_to_slope, slope_to_ratio
-from .presets import read_text_file, write_text_atomic
+from .files import read_text_file, target_problem, write_text_atomic
 
 __all__ = [
     "RAMP_STEP",
@@ -298,16 +298,15 @@ class Automation:
         return "\n".join(lines) + "\n"
 
     def save(self, path) -> None:
-        """Write all events as steps, atomically (see :func:`livedyn.presets.write_text_atomic`).
+        """Write all events as steps, atomically (see :func:`livedyn.files.write_text_atomic`).
 
         Loading the file with the same schema gives the same events.
         """
         name = str(path)
         target = Path(path)
-        if target.is_dir():
-            raise AutomationError(f"{name}: is a directory, expected an automation file path")
-        if not target.parent.is_dir():
-            raise AutomationError(f"{name}: folder {target.parent} does not exist")
+        problem = target_problem(target, "automation file")
+        if problem:
+            raise AutomationError(f"{name}: {problem}")
         text = self.dumps()
         try:
             write_text_atomic(target, text)

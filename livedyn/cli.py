@@ -36,14 +36,15 @@ def _check_target(path, option, protect=()):
         if other is not None and p.resolve() == Path(other).resolve():
             raise CliError(f"{option} {path}: is one of the command's audio or automation "
                            "files; choose another name")
-    if p.is_dir():
-        raise CliError(f"{option} {path}: is a directory, expected a file path")
-    if not p.parent.is_dir():
-        raise CliError(f"{option} {path}: folder {p.parent} does not exist")
+    from .files import target_problem
+
+    problem = target_problem(p)
+    if problem:
+        raise CliError(f"{option} {path}: {problem}")
 
 
 def _write_json(path, option, data):
-    from .presets import write_text_atomic
+    from .files import write_text_atomic
 
     try:
         write_text_atomic(path, json.dumps(data, indent=2, default=float) + "\n")
@@ -102,8 +103,23 @@ def _factory(args):
     return make
 
 
+#: The measurements of ``livedyn measure``, with what each one does.
+MEASUREMENTS = {
+    "curve": "the static curve from a steady level sweep, against the theoretical curve",
+    "timing": "attack and release time constants from level steps",
+    "latency": "the delay of the main path from an impulse, against the reported latency",
+    "distortion": "THD of a low tone against release time",
+}
+
+
 def cmd_measure(args):
     from . import analysis
+
+    if args.what is None:
+        print("livedyn measure WHAT: one of")
+        for k, v in MEASUREMENTS.items():
+            print(f"  {k:11} {v}")
+        raise CliError("measure: expected a measurement: " + ", ".join(MEASUREMENTS))
 
     if args.json:
         _check_target(args.json, "--json")
@@ -254,15 +270,16 @@ def cmd_port_kit(args):
 def cmd_presets(args):
     from . import presets
 
+    if args.show:
+        p = presets.load(args.show)
+        print(presets.dumps(p), end="")
+        return 0
     errors = []
     rows = presets.list_presets(on_error=errors.append)
     for name, desc, algo in rows:
         print(f"{name:24} {algo:11} {desc}")
     for e in errors:
         print(f"(skipped) {e}")
-    if args.show:
-        p = presets.load(args.show)
-        print(presets.dumps(p), end="")
     return 0
 
 
@@ -634,7 +651,7 @@ def _cmd_run(args):
         eng.error = failure
     eng.stop()
     if args.stats_json:
-        from .presets import write_text_atomic
+        from .files import write_text_atomic
 
         snap["realtime_granted"] = bool(snap["realtime"]["granted"])  # the callback's thread
         snap["server_realtime"] = bool(server.realtime_granted) if server else None
@@ -751,11 +768,11 @@ def cmd_pick(args):
 
 def _has_key(setup):
     """Whether the algorithm a Setup names takes a key input (a preset's or the default)."""
-    from . import algorithms, presets
+    from . import loader, presets
     from .render import algorithm_of
 
     preset = presets.load(setup.preset) if setup.preset else None
-    return "key" in algorithms.get(algorithm_of(setup, preset)).schema
+    return "key" in loader.get(algorithm_of(setup, preset)).schema
 
 
 def _print_report(alg):
@@ -768,7 +785,7 @@ def _print_report(alg):
 
 
 def cmd_check(args):
-    from .algorithms.user import UserAlgorithmError, load
+    from .loader import UserAlgorithmError, load
 
     try:
         alg = load(args.file)
@@ -783,45 +800,31 @@ def cmd_check(args):
 def cmd_new_algorithm(args):
     from .algorithms.template import write_template
 
-    path = write_template(args.name, stage=args.stage)
+    path = write_template(args.name, stage=args.stage, example=args.example)
     print(f"wrote {path}: try it with  livedyn run --headless --key-demo --algorithm {path} "
           f"--watch")
     return 0
 
 
-def _bench():
-    """The bench/ package of the source tree (it is not installed with livedyn)."""
-    root = Path(__file__).resolve().parent.parent
-    if not (root / "bench" / "__init__.py").exists():
-        raise CliError("the bench harness lives in the source tree's bench/ folder; run livedyn "
-                       "from a clone of the repository")
-    if str(root) not in sys.path:
-        sys.path.insert(0, str(root))
-    import bench
-
-    return bench
-
-
 def cmd_bench(args):
-    _bench()
-    from bench import live
+    from .bench import live
 
     what = args.what
     result = {}
-    from .algorithms.user import is_user_file
+    from .loader import is_user_file
 
     user_file = is_user_file(args.algorithm)
     if user_file and what in ("kernels", "all"):
-        from bench.user import format_user, run_user
+        from .bench.user import format_user, run_user
 
         result["kernels"] = run_user(args.algorithm, quick=args.quick,
                                      samplerate=int(args.samplerate))
         print(format_user(result["kernels"]), flush=True)
     elif what in ("kernels", "all"):
-        from bench.kernels import machine_info, report
-        from bench.sweep import run_sweep
+        from .bench.kernels import machine_info, report
+        from .bench.sweep import run_sweep
 
-        rows = run_sweep(quick=args.quick)
+        rows = run_sweep(quick=args.quick, wide=args.wide)
         result["kernels"] = report(rows, machine_info())
     if what in ("stream", "all"):
         seconds = args.seconds or (5.0 if args.quick else 60.0)
@@ -851,7 +854,7 @@ def cmd_bench(args):
                                              device=args.device, realtime=not args.no_realtime)
     plots = []
     if args.plot:
-        from bench import plots as bp
+        from .bench import plots as bp
 
         if not bp.have_matplotlib():
             print("(no plots: install the plot extra, pip install 'livedyn[plot]')")
@@ -883,10 +886,14 @@ def cmd_bench(args):
 def _add_setup(p):
     p.add_argument("--algorithm", metavar="NAME",
                    help="compressor, limiter, expander, gate, ducker, or an algorithm file "
-                        "FILE.py (see livedyn new-algorithm)")
-    p.add_argument("--preset", metavar="NAME_OR_FILE", help="a shipped preset name or a .toml")
+                        "FILE.py (see livedyn new-algorithm); default: the preset's, else "
+                        "compressor")
+    p.add_argument("--preset", metavar="NAME_OR_FILE",
+                   help="a shipped preset name (livedyn presets) or a .toml file; default none")
     p.add_argument("--set", metavar="NAME=VALUE", action="append",
-                   help="set a parameter, e.g. --set threshold=-18 --set ratio=4:1 (repeatable)")
+                   help="set a parameter in its own unit (dBFS, dB, ms, Hz, ratio), e.g. --set "
+                        "threshold=-18 --set ratio=4:1; a unique prefix names it (thr=-18); "
+                        "repeatable, applied after the preset")
 
 
 def build_parser():
@@ -901,18 +908,31 @@ def build_parser():
 
     r = sub.add_parser("render", help="process a WAV file offline",
                        description="Process a WAV file offline through a processor.")
-    r.add_argument("input", metavar="IN.wav")
-    r.add_argument("--out", required=True, metavar="OUT.wav")
-    r.add_argument("--key", metavar="KEY.wav", help="external key (side-chain) input")
+    r.add_argument("input", metavar="IN.wav",
+                   help="the WAV file to process (16/24/32-bit integer or 32-bit float, any "
+                        "rate, 1 to 8 channels)")
+    r.add_argument("--out", required=True, metavar="OUT.wav",
+                   help="the processed WAV file (required; RF64 past 4 GiB); never one of the "
+                        "inputs")
+    r.add_argument("--key", metavar="KEY.wav",
+                   help="external key (side-chain) input, same rate and length as IN.wav; "
+                        "default none (the key is the main input)")
     _add_setup(r)
-    r.add_argument("--automation", metavar="FILE", help="frame-stamped parameter changes")
-    r.add_argument("--trace", metavar="DIR", help="write every stage's signal for porting checks")
-    r.add_argument("--blocksize", type=int, default=1024, metavar="N")
+    r.add_argument("--automation", metavar="FILE",
+                   help="frame-stamped parameter changes to replay (README, Automation files); "
+                        "default none")
+    r.add_argument("--trace", metavar="DIR",
+                   help="write every stage's signal here for porting checks; default none")
+    r.add_argument("--blocksize", type=int, default=1024, metavar="N",
+                   help="frames per processing block (default 1024); the output does not "
+                        "depend on it")
     r.add_argument("--keep-latency", action="store_true",
                    help="do not take the processor's latency off the output")
     r.add_argument("--format", choices=["PCM_16", "PCM_24", "PCM_32", "FLOAT"],
                    help="output sample format (default: as the input)")
-    r.add_argument("--summary-json", metavar="FILE")
+    r.add_argument("--summary-json", metavar="FILE",
+                   help="also write the summary (loudness, peaks, gain reduction, latency) as "
+                        "JSON; default none")
     r.add_argument("--layout", choices=["mono", "stereo", "5.0", "5.1", "7.1"],
                    help="channel layout of the loudness figures (BS.1770-4 channel weights: LFE "
                         "left out, surrounds +1.5 dB); default: from the channel count")
@@ -920,14 +940,19 @@ def build_parser():
 
     m = sub.add_parser("measure", help="measure a processor: curve, timing, latency, distortion",
                        description="Measure a configured processor with synthetic signals.")
-    m.add_argument("what", choices=["curve", "timing", "latency", "distortion"])
+    m.add_argument("what", nargs="?", choices=list(MEASUREMENTS), metavar="WHAT",
+                   help="; ".join(f"{k}: {v}" for k, v in MEASUREMENTS.items()))
     _add_setup(m)
-    m.add_argument("--samplerate", type=float, default=48000.0)
+    m.add_argument("--samplerate", type=float, default=48000.0, metavar="HZ",
+                   help="sample rate of the test signals, Hz (default 48000)")
     m.add_argument("--signal", choices=["square", "sine", "both"], default="both",
-                   help="test signal of the curve sweep")
-    m.add_argument("--frequency", type=float, default=50.0, help="tone of the distortion test")
-    m.add_argument("--plot", metavar="DIR", help="write PNG plots here (plot extra)")
-    m.add_argument("--json", metavar="FILE")
+                   help="test signal of the curve sweep (default both)")
+    m.add_argument("--frequency", type=float, default=50.0, metavar="HZ",
+                   help="tone of the distortion test, Hz (default 50)")
+    m.add_argument("--plot", metavar="DIR",
+                   help="write PNG plots here (plot extra); default none")
+    m.add_argument("--json", metavar="FILE",
+                   help="also write the results as JSON; default none")
     m.set_defaults(func=cmd_measure)
 
     pk = sub.add_parser("port-kit", help="golden vectors and a C reference for a port",
@@ -955,9 +980,13 @@ def build_parser():
                                    "narrator), synthesised by livedyn: first live, the narrator "
                                    "ducking the music bed (headless when there is no soundcard), "
                                    "then offline through every shipped preset.")
-    d.add_argument("--out", default="demo-out", metavar="DIR")
-    d.add_argument("--seconds", type=float, default=16.0)
-    d.add_argument("--samplerate", type=int, default=48000)
+    d.add_argument("--out", default="demo-out", metavar="DIR",
+                   help="folder for the scenario, the renders and the live take (default "
+                        "demo-out)")
+    d.add_argument("--seconds", type=float, default=16.0, metavar="S",
+                   help="length of the scenario and of the live part, s (default 16)")
+    d.add_argument("--samplerate", type=int, default=48000, metavar="HZ",
+                   help="sample rate, Hz (default 48000)")
     d.add_argument("--offline-only", action="store_true", help="skip the live part")
     d.add_argument("--headless", action="store_true",
                    help="run the live part on a JACK dummy server even if a soundcard exists")
@@ -967,17 +996,28 @@ def build_parser():
 
     rn = sub.add_parser("run", help="run a processor live on a soundcard or headless",
                         description="Run a processor live. " + CAUTION)
-    rn.add_argument("--device", metavar="D", help="device index or name (both directions)")
-    rn.add_argument("--input-device", metavar="D")
-    rn.add_argument("--output-device", metavar="D")
-    rn.add_argument("--samplerate", type=float, default=48000.0)
-    rn.add_argument("--blocksize", type=int, default=64, metavar="N")
+    rn.add_argument("--device", metavar="D",
+                    help="device index or name for both directions (livedyn devices); default "
+                         "the system's default device")
+    rn.add_argument("--input-device", metavar="D",
+                    help="device index or name for input only; default as --device")
+    rn.add_argument("--output-device", metavar="D",
+                    help="device index or name for output only; default as --device")
+    rn.add_argument("--samplerate", type=float, default=48000.0, metavar="HZ",
+                    help="stream sample rate, Hz (default 48000)")
+    rn.add_argument("--blocksize", type=int, default=64, metavar="N",
+                    help="frames per callback, 16 to 8192 (default 64)")
     _add_setup(rn)
-    rn.add_argument("--main-inputs", metavar="1,2", help="device channels of the main input")
-    rn.add_argument("--key-inputs", metavar="3", help="device channels of the key input")
-    rn.add_argument("--outputs", metavar="1,2", help="device channels that carry the output")
-    rn.add_argument("--input-file", metavar="F", help="play a WAV file as the main input")
-    rn.add_argument("--key-file", metavar="F", help="play a WAV file as the key input")
+    rn.add_argument("--main-inputs", metavar="1,2",
+                    help="device channels of the main input, from 1 (default 1,2)")
+    rn.add_argument("--key-inputs", metavar="3",
+                    help="device channels of the key input, from 1 (default none)")
+    rn.add_argument("--outputs", metavar="1,2",
+                    help="device channels that carry the output, from 1 (default 1,2)")
+    rn.add_argument("--input-file", metavar="F",
+                    help="play a WAV file as the main input (default: the device's inputs)")
+    rn.add_argument("--key-file", metavar="F",
+                    help="play a WAV file as the key input (default: the device's key inputs)")
     rn.add_argument("--test-main", metavar="KIND[:ARGS]",
                     help="a built-in test signal as the main input: tone[:HZ[:DBFS]], "
                          "pink[:DBFS], white[:DBFS], sweep[:F1[:F2[:SECONDS[:DBFS]]]], "
@@ -989,12 +1029,16 @@ def build_parser():
     rn.add_argument("--key-demo", action="store_true",
                     help="the rehearsal demo: the narrator ducks the music bed")
     rn.add_argument("--loop", action="store_true", help="loop file and demo inputs")
-    rn.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds")
+    rn.add_argument("--seconds", type=float, metavar="S",
+                    help="stop after S seconds (default: until you quit; headless 10)")
     rn.add_argument("--record", metavar="DIR",
-                    help="write main.wav, key.wav, out.wav and automation.txt here")
-    rn.add_argument("--stats-json", metavar="FILE", help="write the run's statistics here")
+                    help="write main.wav, key.wav, out.wav and automation.txt here; default "
+                         "none")
+    rn.add_argument("--stats-json", metavar="FILE",
+                    help="write the run's statistics here as JSON; default none")
     rn.add_argument("--monitor", choices=["out", "key", "delta"], default="out",
-                    help="what the outputs carry: processed, filtered key, or what was removed")
+                    help="what the outputs carry: processed, filtered key, or what was removed "
+                         "(default out)")
     rn.add_argument("--output-level", default=str(DEFAULT_OUTPUT_LEVEL_DB), metavar="DB",
                     help="level of the device outputs in dB, -60 to 0 or off (default "
                          f"{DEFAULT_OUTPUT_LEVEL_DB:g}: start low and raise it; meters and "
@@ -1018,7 +1062,7 @@ def build_parser():
                     help="no console: print one status line a second (also when not on a "
                          "terminal)")
     rn.add_argument("--ui-refresh", type=float, default=20.0, metavar="HZ",
-                    help="console meter refresh rate (default 20)")
+                    help="console meter refresh rate, Hz (default 20)")
     rn.add_argument("--headless", action="store_true",
                     help="start a JACK server with its dummy backend (no soundcard needed)")
     rn.add_argument("--loopback", action="store_true",
@@ -1037,35 +1081,51 @@ def build_parser():
                         description="Measure kernel cost, live-stream headroom, the cost of a "
                                     "live swap and round-trip latency (headless JACK server "
                                     "unless --device is given).")
-    bn.add_argument("what", choices=["kernels", "stream", "swap", "latency", "all"])
+    bn.add_argument("what", choices=["kernels", "stream", "swap", "latency", "all"],
+                    help="kernels: cost per frame against plain-Python and plain-C twins; "
+                         "stream: the live callback's share of the block period; swap: what a "
+                         "live swap costs; latency: round trip through a loopback; all: each")
     bn.add_argument("--quick", action="store_true", help="short runs for a smoke test")
-    bn.add_argument("--algorithm", default="compressor",
+    bn.add_argument("--algorithm", default="compressor", metavar="NAME",
                     help="built-in name or FILE.py: kernels then times the file beside the "
-                         "built-in compressor")
-    bn.add_argument("--instances", type=int, default=1, metavar="K")
+                         "built-in compressor (default compressor)")
+    bn.add_argument("--instances", type=int, default=1, metavar="K",
+                    help="stream: instances of the algorithm in one callback (default 1)")
     bn.add_argument("--find-max", action="store_true",
                     help="raise K until blocks are late or the callback passes 70 %% load")
     bn.add_argument("--load", choices=["none", "python-thread", "compile", "all"], default="all",
-                    help="interpreter load in the same process during the stream run")
-    bn.add_argument("--seconds", type=float, help="stream run length (default 60, quick 5)")
-    bn.add_argument("--repeats", type=int, default=5, help="latency measurements")
+                    help="interpreter load in the same process during the stream run "
+                         "(default all: none, then each)")
+    bn.add_argument("--seconds", type=float, metavar="S",
+                    help="stream run length, s (default 60, --quick 5)")
+    bn.add_argument("--repeats", type=int, default=5, metavar="N",
+                    help="latency measurements (default 5)")
     bn.add_argument("--swaps", type=int, metavar="N",
                     help="live swaps to time, the algorithm to a fresh instance of itself "
                          "(default 20, quick 5)")
-    bn.add_argument("--samplerate", type=float, default=48000.0)
-    bn.add_argument("--blocksize", type=int, default=64)
-    bn.add_argument("--device", help="measure on this device instead of a headless server")
+    bn.add_argument("--samplerate", type=float, default=48000.0, metavar="HZ",
+                    help="live runs: sample rate, Hz (default 48000)")
+    bn.add_argument("--blocksize", type=int, default=64, metavar="N",
+                    help="live runs: frames per callback (default 64)")
+    bn.add_argument("--device", metavar="D",
+                    help="measure on this device (index or name) instead of a headless server; "
+                         "default headless")
     bn.add_argument("--no-realtime", action="store_true",
                     help="do not ask for real-time scheduling (server and stream) nor lock "
                          "memory")
-    bn.add_argument("--json", metavar="FILE")
-    bn.add_argument("--plot", metavar="DIR", help="write PNG plots here (plot extra)")
+    bn.add_argument("--json", metavar="FILE",
+                    help="also write every figure and the machine's details as JSON; default "
+                         "none")
+    bn.add_argument("--plot", metavar="DIR",
+                    help="write PNG plots here (plot extra); default none")
+    bn.add_argument("--wide", action="store_true",
+                    help="kernels: every column (the default table fits 100 columns)")
     bn.set_defaults(func=cmd_bench)
 
     ck = sub.add_parser("check", help="compile and check an algorithm file, print the report",
                         description="Compile an algorithm file and run livedyn's load-time "
                                     "checks on it.")
-    ck.add_argument("file", metavar="FILE.py")
+    ck.add_argument("file", metavar="FILE.py", help="the algorithm file to check")
     ck.add_argument("--full", action="store_true", help="print the compiler's whole message")
     ck.set_defaults(func=cmd_check)
 
@@ -1073,7 +1133,11 @@ def build_parser():
                         description="Write NAME.py, a commented algorithm file to edit.")
     na.add_argument("name", metavar="NAME", help="file name (NAME.py) or path")
     na.add_argument("--stage", choices=["gain_curve", "detector", "smoother", "kernel"],
-                    default="gain_curve", help="which stage the file starts with")
+                    default="gain_curve",
+                    help="which stage the file starts with (default gain_curve)")
+    na.add_argument("--example", metavar="EXAMPLE",
+                    help="start from a copy of a shipped example instead: loudness_ducker, "
+                         "program_release or speech_key (default none)")
     na.set_defaults(func=cmd_new_algorithm)
 
     dv = sub.add_parser("devices", help="list audio devices", description="List audio devices.")
@@ -1104,9 +1168,10 @@ def build_parser():
     pk.add_argument("--samplerate", type=float, default=48000.0)
     pk.set_defaults(func=cmd_pick)
 
-    ps = sub.add_parser("presets", help="list the shipped presets",
-                        description="List the shipped presets.")
-    ps.add_argument("--show", metavar="NAME", help="print one preset")
+    ps = sub.add_parser("presets", help="list the shipped presets, or show one",
+                        description="List the shipped presets, or print one of them.")
+    ps.add_argument("--show", metavar="NAME",
+                    help="print this preset's file alone instead of the list")
     ps.set_defaults(func=cmd_presets)
     return ap
 

@@ -387,6 +387,20 @@ class Schema:
     def names(self):
         return list(self.params)
 
+    def resolve(self, word) -> str:
+        """The parameter ``word`` names: itself, or the one name it is a unique prefix of
+        (``thr`` -> ``threshold``), as the console accepts. ParamError when it is unknown or
+        could be several (naming them)."""
+        word = str(word).strip()
+        if word in self.params:
+            return word
+        hits = [n for n in self.params if word and n.startswith(word)]
+        if len(hits) == 1:
+            return hits[0]
+        if hits:
+            raise ParamError(f"{word!r} could be {', '.join(hits)}: type more letters")
+        return self[word].name  # raises the unknown-parameter error
+
 
 def new_param_array():
     import numpy as np

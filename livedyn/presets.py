@@ -30,7 +30,7 @@ livedyn knows (:data:`livedyn.params.ALL`) and only the ones in the file are ret
 Every failure raises :class:`PresetError` with one line that starts with the file name, e.g.
 ``presets/x.toml:9: ratio = -3: out of range, expected 1 to inf``.
 
-Writes are atomic (:func:`write_text_atomic`): a temporary file in the target folder, flushed and
+Writes are atomic (:func:`livedyn.files.write_text_atomic`): a temporary file in the target folder, flushed and
 fsynced, then renamed onto the target, so a crash or error never leaves a half-written preset.
 """
 from __future__ import annotations
@@ -38,7 +38,6 @@ from __future__ import annotations
 import math
 import os
 import re
-import secrets
 import tomllib
 import warnings
 from dataclasses import dataclass, field
@@ -47,7 +46,10 @@ from pathlib import Path
 import tomli_w
 
 from . import algorithms
+from . import files as _files
+from .files import fsync_dir, write_text_atomic  # noqa: F401 (part of this module's API)
 from .params import ALL, Param, ParamError, Schema
+from .shipped import presets_folder
 
 __all__ = [
     "FORMAT_VERSION",
@@ -141,11 +143,11 @@ class Preset:
 
 
 def presets_dir() -> Path:
-    """The folder of shipped presets: ``$LIVEDYN_PRESETS`` or the repository's ``presets/``."""
+    """The folder of shipped presets: ``$LIVEDYN_PRESETS`` or the package's ``presets/``."""
     env = os.environ.get(ENV_DIR)
     if env:
         return Path(env).expanduser()
-    return Path(__file__).resolve().parent.parent / "presets"
+    return presets_folder()
 
 
 #: Environment variable that points at another folder of the user's own presets.
@@ -215,110 +217,12 @@ def _resolve(path_or_name) -> Path:
 
 
 # ---------------------------------------------------------------------------------------------
-# Shared text-file helpers (also used by livedyn.automation)
+# Text-file helpers (the shared ones live in livedyn.files)
 
 
 def read_text_file(path, error=PresetError, what="preset", max_bytes=MAX_BYTES) -> str:
-    """Read a small UTF-8 text file, turning every way it can fail into one ``error`` line.
-
-    Refuses a missing file, a directory or other non-regular file, an unreadable file, a file
-    over ``max_bytes``, an empty file, binary data (a NUL byte) and text that is not UTF-8
-    (naming the line and offset). A UTF-8 byte-order mark is dropped.
-    """
-    p = Path(path)
-    name = str(path)
-    try:
-        st = p.stat()
-    except FileNotFoundError:
-        raise error(f"{name}: no such file, expected a {what} file") from None
-    except OSError as e:
-        raise error(f"{name}: cannot read: {e.strerror or e}") from None
-    if p.is_dir():
-        raise error(f"{name}: is a directory, expected a {what} file")
-    if not p.is_file():
-        raise error(f"{name}: not a regular file, expected a {what} file")
-    if st.st_size > max_bytes:
-        raise error(f"{name}: {st.st_size} bytes is too large for a {what} (limit {max_bytes})")
-    try:
-        data = p.read_bytes()
-    except OSError as e:
-        raise error(f"{name}: cannot read: {e.strerror or e}") from None
-    if not data.strip():
-        raise error(f"{name}: empty file, expected a {what}")
-    nul = data.find(b"\x00")
-    if nul >= 0:
-        raise error(
-            f"{name}: binary data (NUL byte at offset {nul}), expected a {what} as UTF-8 text"
-        )
-    try:
-        text = data.decode("utf-8")
-    except UnicodeDecodeError as e:
-        line = data[: e.start].count(b"\n") + 1
-        raise error(
-            f"{name}:{line}: not UTF-8 text (byte 0x{data[e.start]:02x} at offset {e.start}), "
-            f"expected a {what} saved as UTF-8"
-        ) from None
-    return text[1:] if text.startswith("\ufeff") else text
-
-
-def write_text_atomic(path, text: str) -> None:
-    """Write ``text`` (UTF-8) to ``path`` atomically.
-
-    The text goes to a new temporary file in the target's folder, which is flushed, fsynced and
-    renamed onto the target with :func:`os.replace` (atomic on POSIX and Windows within one
-    filesystem); the folder is then fsynced so the rename survives a power cut. On any failure
-    the temporary file is removed and an existing target is left untouched. The new file gets
-    the default permissions (0o666 less the umask), or those of the file it replaces.
-
-    Raises OSError from the file system (callers wrap it into their own one-line error).
-    """
-    target = Path(path)
-    folder = target.parent
-    data = text.encode("utf-8")
-    try:
-        mode = target.stat().st_mode & 0o7777
-    except OSError:
-        mode = None
-    while True:
-        tmp = folder / f".{target.name}.{secrets.token_hex(4)}.tmp"
-        try:
-            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
-            break
-        except FileExistsError:
-            continue
-    try:
-        try:
-            view = memoryview(data)
-            while view:
-                n = os.write(fd, view)
-                view = view[n:]
-            if mode is not None and hasattr(os, "fchmod"):
-                os.fchmod(fd, mode)
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-        os.replace(tmp, target)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-    fsync_dir(folder)
-
-
-def fsync_dir(folder: Path) -> None:
-    """Make a rename in ``folder`` durable (best effort)."""
-    try:
-        dfd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(dfd)
-    except OSError:
-        pass  # some file systems refuse fsync on a directory; the rename itself is done
-    finally:
-        os.close(dfd)
+    """Read a small UTF-8 text file (see :func:`livedyn.files.read_text_file`), as a preset."""
+    return _files.read_text_file(path, error, what, max_bytes)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -460,7 +364,9 @@ def _from_doc(doc: dict, path: Path, text: str) -> Preset:
         # the file's own schema when it loads (its own parameters included); otherwise check
         # against livedyn's parameters and leave the file's errors to whoever runs it
         try:
-            user = algorithms.get(str(algorithm_file))
+            from .loader import load  # lazy: compiling a file pulls in numba
+
+            user = load(algorithm_file)
             schema, alg_name = user.schema, user.name
         except ParamError:
             schema = Schema(dict(ALL))
@@ -598,10 +504,9 @@ def save(preset: Preset, path) -> Path:
     """
     target = Path(path)
     name = str(path)
-    if target.is_dir():
-        raise PresetError(f"{name}: is a directory, expected a preset file path")
-    if not target.parent.is_dir():
-        raise PresetError(f"{name}: folder {target.parent} does not exist")
+    problem = _files.target_problem(target, "preset file")
+    if problem:
+        raise PresetError(f"{name}: {problem}")
     text = dumps(preset, target)
     # Self-check: what we write must read back to the same values.
     back = _from_doc(tomllib.loads(text), target, text)

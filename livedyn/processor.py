@@ -67,7 +67,7 @@ class Processor:
             self.p[slot] = float(stage.address) if stage is not None else 0.0
         if self.algorithm.needs_key and self.key_channels == 0 and "key" in self.schema:
             self.p[self.schema["key"].slot] = 0.0  # no key input: fall back to the main input
-        self._check_combination(self.p)
+        self.check_combination(self.p)
         for name, value in params.items():
             self.set(name, value)
 
@@ -98,17 +98,44 @@ class Processor:
     # -- parameters ---------------------------------------------------------------------------
     def set(self, name, value):
         """Set a parameter from a number or text; raises ParamError with a one-line reason."""
+        prm, v = self.validate(name, value)
+        self.p[prm.slot] = v
+        return v
+
+    def validate(self, name, value, base=None):
+        """Check a parameter change without making it.
+
+        Parameters
+        ----------
+        name : str
+            A parameter of this algorithm.
+        value : float or str
+            A number or text such as ``"4:1"`` or ``"off"``.
+        base : numpy.ndarray, optional
+            The parameter array the change would apply to (default this processor's own; the
+            live engine passes the values it has pending).
+
+        Returns
+        -------
+        (Param, float)
+            The parameter and the value as it would be stored.
+
+        Raises
+        ------
+        ParamError
+            One line: a value out of range, a filter at or above half the sample rate, or a
+            combination this processor cannot run (see :meth:`check_combination`).
+        """
         prm = self.schema[name]
         v = prm.parse(value)
         if prm.name in ("key_lpf", "key_bpf") and v >= self.samplerate / 2:
             raise ParamError(
                 f"{prm.name} = {v:g} Hz: must be below half the sample rate "
                 f"({self.samplerate / 2:g} Hz)")
-        trial = self.p.copy()
+        trial = (self.p if base is None else base).copy()
         trial[prm.slot] = v
-        self._check_combination(trial)
-        self.p[prm.slot] = v
-        return v
+        self.check_combination(trial)
+        return prm, v
 
     def get(self, name) -> float:
         return float(self.p[self.schema[name].slot])
@@ -121,7 +148,10 @@ class Processor:
         """Current parameter values by name as the user reads them."""
         return {prm.name: prm.format(self.p[prm.slot]) for prm in self.schema}
 
-    def _check_combination(self, p):
+    def check_combination(self, p):
+        """Raise ParamError when the values in parameter array ``p`` cannot run together here
+        (an external key without key channels, unlinked gain with a key of another width, a
+        feedback detector on an external key, a limiter linked by the mean)."""
         if "key" in self.schema and int(p[P_KEY]) == KEY_EXTERNAL and self.key_channels == 0:
             raise ParamError(
                 f"key = external: this {self.algorithm.name} has no key input "

@@ -18,9 +18,10 @@ from pathlib import Path
 
 import numpy as np
 
-from . import algorithms
+from . import loader
 from . import presets as presets_mod
 from .automation import Automation, AutomationCursor
+from .files import write_text_atomic
 from .dsp.layout import TRACE_NAMES
 from .meters import MeterSet
 from .params import KEY_EXTERNAL, LEVEL_FLOOR_DB, P_KEY, ParamError
@@ -57,14 +58,14 @@ def algorithm_of(setup: Setup, preset=None) -> str:
     algo = setup.algorithm
     if preset is not None:
         if preset.algorithm_file is not None:
-            user = algorithms.get(str(preset.algorithm_file))
+            user = loader.get(str(preset.algorithm_file))
             preset.checked(user.schema)
             if algo and Path(algo).resolve() != Path(preset.algorithm_file).resolve():
                 raise RenderError(f"--algorithm {algo} conflicts with preset {setup.preset} "
                                   f"(algorithm_file {preset.algorithm_file}); give one")
             algo = str(preset.algorithm_file)
         else:
-            if algo and algorithms.get(algo).name != preset.algorithm:
+            if algo and loader.get(algo).name != preset.algorithm:
                 raise RenderError(
                     f"--algorithm {algo} conflicts with preset {setup.preset} "
                     f"(algorithm {preset.algorithm}); give one or make them agree")
@@ -82,7 +83,7 @@ def build_processor(setup: Setup, samplerate, channels, key_channels=0,
     raise RenderError.
     """
     preset = presets_mod.load(setup.preset) if setup.preset else None
-    proc = Processor(algorithm_of(setup, preset), samplerate, channels,
+    proc = Processor(loader.get(algorithm_of(setup, preset)), samplerate, channels,
                      key_channels=key_channels)
     if key_channels and "key" not in proc.schema:
         raise RenderError(f"--key: the {proc.algorithm.name} has no key input; leave out "
@@ -98,6 +99,7 @@ def build_processor(setup: Setup, samplerate, channels, key_channels=0,
                     continue  # no key input here: stay on the main input
             proc.set(name, v)
     for name, value in setup.settings:
+        name = proc.schema.resolve(name)  # a unique prefix, as at the console
         proc.set(name, value)
         if name == "key":
             wants_external = int(proc.p[P_KEY]) == KEY_EXTERNAL
@@ -279,11 +281,16 @@ class _TraceWriter:
         for w in self.writers.values():
             w.close()
         text = json.dumps(info, indent=2, default=float)
-        presets_mod.write_text_atomic(self.folder / "trace.json", text + "\n")
+        write_text_atomic(self.folder / "trace.json", text + "\n")
 
     def abort(self):
         for w in self.writers.values():
             w.abort()
+
+
+#: Suffixes ``render`` writes under: WAV data under any other name would mislead every program
+#: that goes by the name (FLAC and the rest are refused, not written as WAV).
+OUT_SUFFIXES = (".wav", ".wave")
 
 
 def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None, trace_dir=None,
@@ -303,6 +310,10 @@ def render(in_path, out_path, setup: Setup, key_path=None, automation_path=None,
     """
     if isinstance(blocksize, bool) or int(blocksize) != blocksize or not 1 <= blocksize <= 65536:
         raise RenderError(f"--blocksize {blocksize!r}: expected a whole number from 1 to 65536")
+    suffix = Path(out_path).suffix
+    if suffix.lower() not in OUT_SUFFIXES:
+        raise RenderError(f"--out {out_path}: livedyn writes WAV (RF64 past 4 GiB), expected a "
+                          f"name ending in .wav, not {suffix or 'no suffix'}")
     blocksize = int(blocksize)
     others = ((in_path, "input"), (key_path, "key"), (automation_path, "automation"))
     for other, what in others:

@@ -39,11 +39,12 @@ References
 from __future__ import annotations
 
 import os
-import secrets
 from pathlib import Path
 
 import numpy as np
 import soundfile as sf
+
+from .files import fsync_dir, reserve_temp, target_problem
 
 __all__ = [
     "WavError",
@@ -294,11 +295,10 @@ class WavWriter:
         if container not in CONTAINERS:
             raise WavError(f"{name}: container {container!r}, expected one of "
                            f"{', '.join(CONTAINERS)}")
-        if self.path.is_dir():
-            raise WavError(f"{name}: is a directory, expected a WAV file path")
+        problem = target_problem(self.path, "WAV file")
+        if problem:
+            raise WavError(f"{name}: {problem}")
         folder = self.path.parent
-        if not folder.is_dir():
-            raise WavError(f"{name}: folder {folder} does not exist")
         if container == "WAV" and frames_hint is not None and \
                 needs_rf64(frames_hint, channels, subtype):
             raise WavError(
@@ -313,15 +313,10 @@ class WavWriter:
         self._bits = _INT_BITS.get(subtype)
 
         # Reserve a temporary name in the target's folder.
-        while True:
-            tmp = folder / f".{self.path.name}.{secrets.token_hex(4)}.tmp"
-            try:
-                fd = os.open(tmp, os.O_RDWR | os.O_CREAT | os.O_EXCL, 0o666)
-                break
-            except FileExistsError:
-                continue
-            except OSError as e:
-                raise WavError(f"{name}: cannot write in {folder}: {e.strerror or e}") from None
+        try:
+            tmp, fd = reserve_temp(self.path, os.O_RDWR)
+        except OSError as e:
+            raise WavError(f"{name}: cannot write in {folder}: {e.strerror or e}") from None
         self._tmp, self._fd = tmp, fd
         try:
             self.container = self._open(container)
@@ -421,8 +416,6 @@ class WavWriter:
             if isinstance(e, OSError):
                 raise WavError(f"{self._name}: cannot write: {e.strerror or e}") from None
             raise
-        from .presets import fsync_dir
-
         fsync_dir(self.path.parent)
 
     def abort(self) -> None:

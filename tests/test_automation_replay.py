@@ -7,7 +7,7 @@ bursts, at several block sizes, and through ``livedyn render --automation``.
 Sources of the checks
 ---------------------
 * Bit-identical output whatever the block size a caller splits a signal into: the project's
-  real-time contract (house plan, section 3; kernel rules), i.e. a live run at 64 frames and an
+  kernel contract (DEVELOPERS.md, "The kernel contract"), i.e. a live run at 64 frames and an
   offline render at 4097 frames must produce the same samples. Block sizes 1 (every sample a
   block), 63 and 64 (a typical live period and its neighbour), 4097 and 8192 (offline sizes,
   one of them odd) are common practice, no source.

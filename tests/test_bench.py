@@ -1,6 +1,6 @@
 """The kernel benchmark: plain-Python twins agree with the numba kernels; the harness runs.
 
-Reference for the agreement checks: bench.twins, an independent plain-Python implementation of
+Reference for the agreement checks: livedyn.bench.twins, an independent plain-Python implementation of
 the equations livedyn.dsp documents ([GMR2012] eqs. (3), (4), (16), (17); Audio EQ Cookbook key
 filters; ITU-R BS.1770-4 Annex 2 true-peak interpolation; the limiter design in the
 livedyn.dsp.limiter docstring). Both evaluate the same IEEE-754 double operations in the same
@@ -15,13 +15,14 @@ import math
 import numpy as np
 import pytest
 
-import bench.kernels as bk
-from bench.__main__ import main as bench_main
-from bench.kernels import CASES, ROW_KEYS, TOLERANCE, noise_bursts, report, run_kernels
-from bench.twins import twin_for
+import livedyn.bench.kernels as bk
+from livedyn.bench.__main__ import main as bench_main
+from livedyn.bench.kernels import CASES, ROW_KEYS, TOLERANCE, noise_bursts, report, run_kernels
+from livedyn.bench.twins import twin_for
 from livedyn.dsp import layout as L
 from livedyn.params import P_RATIO
 from livedyn.processor import Processor
+from tests.kernel_cases import LIMITER_CASES, LIMITER_IDS
 
 FS = 48000
 
@@ -181,19 +182,7 @@ def test_twin_matches_other_laws(algorithm, settings, key_channels):
              signal="sweep", trace=False)
 
 
-@pytest.mark.parametrize("settings,schedule", [
-    (dict(true_peak="on"), None),
-    (dict(link="none", hold=4.0, release=20.0), None),
-    (dict(attack=0.0, lookahead=1.0, ceiling=-12.0), None),
-    (dict(lookahead=5.0), {4: dict(true_peak="on"), 9: dict(lookahead=8.0, attack=3.0),
-                           13: dict(lookahead=3.0), 16: dict(ceiling=-6.0),
-                           22: dict(attack=1.0, true_peak="off")}),
-    (dict(lookahead=2.0, release=20.0), {3: dict(link="none"), 9: dict(link="max"),
-                                           12: dict(true_peak="on"), 13: dict(link="none"),
-                                           15: dict(true_peak="off", lookahead=0.1),
-                                           20: dict(link="max", lookahead=0.0),
-                                           21: dict(true_peak="on")}),
-], ids=["true-peak", "link-none+hold", "attack-0", "changes-mid-stream", "link-and-true-peak"])
+@pytest.mark.parametrize("settings,schedule", LIMITER_CASES, ids=LIMITER_IDS)
 def test_twin_matches_limiter(settings, schedule):
     # Reference: bench.twins; ITU-R BS.1770-4 Annex 2 for the true-peak taps (TP_TAPS).
     # frames > SUM_REFRESH so that the exact re-summing of the moving average is crossed; +18 dB
@@ -233,6 +222,27 @@ def test_run_kernels_smoke_returns_complete_rows():
     text = "\n".join(lines)
     for c in CASES:
         assert c.name in text
+
+
+def test_table_fits_100_columns_and_never_shows_a_negative_call_cost():
+    # README, "Commands" (bench): the default table fits 100 columns, --wide shows the rest;
+    # a call cost is a difference of two medians, so a negative one is "within noise".
+    rows = run_kernels(out=None, **{**SMALL, "cases": CASES[:2]})
+    rows[0]["py_call_overhead_us_per_block"] = -1.25
+    rows[1]["process_overhead_us_per_block"] = -0.5
+    rows[1]["py_call_overhead_us_per_block"] = 0.75
+    narrow = bk.format_table(rows, bk.machine_info())
+    wide = bk.format_table(rows, bk.machine_info(), wide=True)
+    table = [ln for ln in narrow if ln.startswith(tuple(c.name for c in CASES[:2]))]
+    assert len(table) == 2
+    assert max(len(ln) for ln in narrow if not ln.startswith("CPU:")) <= bk.NARROW
+    assert max(len(ln) for ln in wide) > bk.NARROW  # the rest of the columns
+    assert "twin ns/fr" in wide[2] and "twin ns/fr" not in narrow[2]
+    for lines in (narrow, wide):
+        body = [ln for ln in lines if ln.startswith(tuple(c.name for c in CASES[:2]))]
+        assert body[0].count("within noise") == 1 and body[1].count("within noise") == 1
+        assert "0.75" in body[1]
+        assert "-1.25" not in body[0] and "-0.50" not in body[1]
 
 
 def test_mismatching_twin_gets_no_timings(monkeypatch):

@@ -1,9 +1,9 @@
-"""The measuring parts of bench/live.py on known inputs (no stream needed)."""
+"""The measuring parts of livedyn/bench/live.py on known inputs (no stream needed)."""
 import numpy as np
 import pytest
 import scipy.signal as sps
 
-from bench.live import find_delay, percentile_share
+from livedyn.bench.live import find_delay, percentile_share
 
 
 @pytest.mark.parametrize("delay", [0, 1, 64, 128, 1999])
@@ -39,7 +39,7 @@ def test_percentile_share_on_a_synthetic_timing_series():
 
 
 def test_instances_per_core():
-    from bench.sweep import instances_per_core
+    from livedyn.bench.sweep import instances_per_core
 
     # 48 kHz: one frame every 20833 ns; 70 % of that is 14583 ns; at 60 ns per frame, 243
     assert instances_per_core(60.0, 48000) == 243

@@ -8,9 +8,10 @@ Sources of the checks
 * Static curve: Giannoulis, Massberg and Reiss, JAES 60(6) 2012, eq. (4), through the
   independent implementation in ``tests/reference.py``.
 * One-pole step response ``1 - exp(-t / tau)``: 63.2 % at ``t = tau`` and a 10-90 % rise of
-  ``tau ln 9 = 2.197 tau`` (house plan, section 4; the arithmetic is done here).
-* Latency: an impulse comes out ``round(lookahead * fs)`` samples later (house plan, section 4:
-  latency is reported, never hidden) - the reported and the measured value must agree.
+  ``tau ln 9 = 2.197 tau`` (README, "Parameters"; the arithmetic is done here).
+* Latency: an impulse comes out ``round(lookahead * fs)`` samples later (DEVELOPERS.md,
+  "Conventions the tests rely on": latency is reported, never hidden) - the reported and the
+  measured value must agree.
 * THD of a low tone falls as release gets longer: common practice, no source.
 """
 from __future__ import annotations
@@ -236,6 +237,78 @@ def test_help():
         assert opt in p.stdout
 
 
+_UNIT_OR_DEFAULT = re.compile(r"default|dBFS|\bdB\b|\bms\b|\bHz\b|\bs\b|frames|"
+                              r"channels|required|repeatable|instead of", re.I)
+
+
+def test_every_option_has_help_with_unit_or_default():
+    # README, "Commands": every option says what it takes; a value option also its unit or
+    # default (a switch is off unless given, so its help says what it turns on).
+    import argparse
+
+    ap = cli.build_parser()
+    sub = next(a for a in ap._actions if isinstance(a, argparse._SubParsersAction))
+    missing, vague = [], []
+    for name, p in sub.choices.items():
+        for a in p._actions:
+            if isinstance(a, argparse._HelpAction):
+                continue
+            label = f"{name} {'/'.join(a.option_strings) or a.dest}"
+            if not a.help:
+                missing.append(label)
+            elif a.nargs != 0 and a.option_strings and a.choices is None and \
+                    not _UNIT_OR_DEFAULT.search(a.help):
+                vague.append(f"{label}: {a.help}")
+    assert missing == []
+    assert vague == []
+
+
+def test_measure_without_a_measurement_lists_the_four(capsys):
+    rc, out, err = run(["measure"], capsys)
+    assert_one_line_error(rc, err)
+    for what in ("curve", "timing", "latency", "distortion"):
+        assert re.search(rf"^  {what} ", out, re.M), out
+
+
+def test_set_accepts_a_unique_prefix(tmp_path, capsys):
+    x = tmp_path / "in.wav"
+    sf.write(x, np.zeros((4800, 1), np.float32), FS, subtype="FLOAT")
+    rc, out, err = run(["render", x, "--out", tmp_path / "o.wav", "--set", "thresh=-10",
+                        "--set", "rat=3", "--summary-json", tmp_path / "s.json"], capsys)
+    assert rc == 0, err
+    rc, out, err = run(["measure", "latency", "--set", "look=2"], capsys)
+    assert rc == 0 and "reported 96 samples" in out, out  # 2 ms at 48 kHz
+    rc, out, err = run(["measure", "latency", "--set", "key=main", "--set", "k=1"], capsys)
+    assert_one_line_error(rc, err)
+    assert "'k' could be knee, key, key_hpf" in err
+
+
+@pytest.mark.parametrize("name", ["o.flac", "o.ogg", "o", "o.WAV.txt"])
+def test_render_refuses_an_output_that_is_not_wav(tmp_path, capsys, name):
+    x = tmp_path / "in.wav"
+    sf.write(x, np.zeros((480, 1), np.float32), FS, subtype="FLOAT")
+    rc, out, err = run(["render", x, "--out", tmp_path / name], capsys)
+    assert_one_line_error(rc, err)
+    assert "expected a name ending in .wav" in err
+    assert not (tmp_path / name).exists()
+    rc, out, err = run(["render", x, "--out", tmp_path / "o.WAV"], capsys)
+    assert rc == 0 and sf.info(str(tmp_path / "o.WAV")).format in ("WAV", "WAVEX", "RF64")
+
+
+def test_new_algorithm_copies_a_shipped_example(tmp_path, capsys):
+    from livedyn.shipped import examples_folder
+
+    rc, out, err = run(["new-algorithm", tmp_path / "mine", "--example", "program_release"],
+                       capsys)
+    assert rc == 0, err
+    assert (tmp_path / "mine.py").read_bytes() == \
+        (examples_folder() / "program_release.py").read_bytes()
+    rc, out, err = run(["new-algorithm", tmp_path / "other", "--example", "nope"], capsys)
+    assert_one_line_error(rc, err)
+    assert "expected one of loudness_ducker, program_release, speech_key" in err
+    assert not (tmp_path / "other.py").exists()
+
+
 def test_no_command_prints_help_and_exits_2(capsys):
     rc, out, _ = run([], capsys)
     assert rc == 2 and "render" in out
@@ -252,8 +325,8 @@ def test_presets_lists_the_six_shipped(capsys):
 def test_presets_show(capsys):
     rc, out, err = run(["presets", "--show", "drums-tame"], capsys)
     assert rc == 0 and err == ""
-    text = out[out.index("# livedyn preset"):]
-    doc = tomllib.loads(text)
+    assert out.startswith("# livedyn preset")  # that preset alone, not the list before it
+    doc = tomllib.loads(out)
     assert doc["algorithm"] == "compressor"
     assert doc["params"]["threshold"] == -20 and doc["params"]["ratio"] == "4:1"
     # the same settings as the shipped file, read with Python's own TOML parser

@@ -1,7 +1,7 @@
-"""The plain-C twins (bench/ctwin) agree with the numba kernels; the build helper and harness work.
+"""The plain-C twins (livedyn/bench/ctwin) agree with the numba kernels; the build helper and harness work.
 
 Reference for the agreement checks: the numba kernels livedyn.dsp.dynamics.dynamics_block and
-livedyn.dsp.limiter.limiter_block, of which bench/ctwin/kernels.c is an independent C
+livedyn.dsp.limiter.limiter_block, of which livedyn/bench/ctwin/kernels.c is an independent C
 transcription (same IEEE-754 double operations in the same order, the same libm functions, no
 fast math, no multiply-add contraction on either side: -ffp-contract=off for gcc, and numba
 without fastmath lets LLVM contract nothing). Outputs, traces and final states are therefore
@@ -17,13 +17,14 @@ import subprocess
 import numpy as np
 import pytest
 
-import bench.ctwin as ct
-import bench.kernels as bk
-from bench.kernels import CASES, CTWIN_ROW_KEYS, ROW_KEYS, noise_bursts, run_ctwin, run_kernels
+import livedyn.bench.ctwin as ct
+import livedyn.bench.kernels as bk
+from livedyn.bench.kernels import CASES, CTWIN_ROW_KEYS, ROW_KEYS, noise_bursts, run_ctwin, run_kernels
 from livedyn.dsp import layout as L
 from livedyn.dsp import stages as S
 from livedyn.params import ParamError
 from livedyn.processor import Processor
+from tests.kernel_cases import LIMITER_CASES, LIMITER_IDS
 
 FS = 48000
 
@@ -154,19 +155,7 @@ def test_c_twin_matches_other_laws(lib, algorithm, settings, key_channels):
              signal="sweep", trace=False)
 
 
-@pytest.mark.parametrize("settings,schedule", [
-    (dict(true_peak="on"), None),
-    (dict(link="none", hold=4.0, release=20.0), None),
-    (dict(attack=0.0, lookahead=1.0, ceiling=-12.0), None),
-    (dict(lookahead=5.0), {4: dict(true_peak="on"), 9: dict(lookahead=8.0, attack=3.0),
-                           13: dict(lookahead=3.0), 16: dict(ceiling=-6.0),
-                           22: dict(attack=1.0, true_peak="off")}),
-    (dict(lookahead=2.0, release=20.0), {3: dict(link="none"), 9: dict(link="max"),
-                                           12: dict(true_peak="on"), 13: dict(link="none"),
-                                           15: dict(true_peak="off", lookahead=0.1),
-                                           20: dict(link="max", lookahead=0.0),
-                                           21: dict(true_peak="on")}),
-], ids=["true-peak", "link-none+hold", "attack-0", "changes-mid-stream", "link-and-true-peak"])
+@pytest.mark.parametrize("settings,schedule", LIMITER_CASES, ids=LIMITER_IDS)
 def test_c_twin_matches_limiter(lib, settings, schedule):
     # Reference: the numba kernel limiter_block. 4400 frames > SUM_REFRESH (the exact re-sum of
     # the moving average is crossed); +18 dB so that the ceiling is at work when settings change.
@@ -229,7 +218,7 @@ def test_c_twin_matches_random_settings(lib, seed):
 
 @pytest.mark.parametrize("algorithm", ["compressor", "limiter"])
 def test_c_driver_matches_numba_driver(lib, algorithm):
-    # Reference: bench.kernels.drive (the numba block loop): the same whole blocks, the same
+    # Reference: livedyn.bench.kernels.drive (the numba block loop): the same whole blocks, the same
     # output; frames after the last whole block are left alone; the elapsed time is positive.
     proc = Processor(algorithm, FS, 2, lookahead=2.0)
     x = noise_bursts(3, 1000, 2, FS) * np.float32(4.0)
@@ -384,6 +373,10 @@ def test_run_ctwin_rows_and_table(lib):
         assert r["numba_over_c"] == pytest.approx(r["numba_ns_per_frame"] / r["c_ns_per_frame"])
     text = "\n".join(lines)
     assert "numba/C" in text and all(c.name in text for c in CASES)
+    # the default table fits 100 columns; --wide adds the spreads
+    assert max(len(ln) for ln in lines if not ln.startswith(("CPU:", "C:"))) <= bk.NARROW
+    wide = bk.format_ctwin_table(rows, wide=True)
+    assert "[min-max]" in wide[2] and "[min-max]" not in text
 
 
 def test_run_kernels_has_c_columns(lib):

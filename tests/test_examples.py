@@ -22,11 +22,12 @@ import pytest
 from scipy import signal
 
 import livedyn
-from livedyn.algorithms.user import load
+from livedyn.loader import load
 from livedyn.dsp import layout as L
+from livedyn.shipped import examples_folder
 
 FS = 48000
-EXAMPLES = Path(livedyn.__file__).parent / "examples"
+EXAMPLES = examples_folder()
 NAMES = ("program_release", "speech_key", "loudness_ducker")
 
 # ITU-R BS.1770-4 Annex 1, Table 1 (stage 1, shelf) and Table 2 (stage 2, high-pass), 48 kHz,

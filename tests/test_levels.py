@@ -135,8 +135,9 @@ def _no_subnormals(a):
     ids=["defaults", "fast-decay"],
 )
 def test_no_subnormals_after_loud_then_silence(kw):
-    # HOUSE rule (denormals): loud input then 10 s silence, checked every 100 ms; the fast
-    # settings would reach float64 subnormals within the 10 s without the documented flush
+    # No subnormals (DEVELOPERS.md, "The kernel contract"): loud input then 10 s silence, checked
+    # every 100 ms; the fast settings would reach float64 subnormals within the 10 s without the
+    # documented flush
     fs = 48000
     rng = np.random.default_rng(14)
     m = meters.LevelMeter(fs, 2, **kw)

@@ -24,10 +24,11 @@ import numpy as np
 import pytest
 
 import livedyn
-from livedyn.algorithms.user import load
+from livedyn.loader import load
 from livedyn.engine import callback as cb
 from livedyn.engine.engine import ArraySource, Engine
 from livedyn.engine.watch import FileWatcher
+from tests.waiting import stream_for, stream_until
 
 FS = 48000
 BS = 64
@@ -103,7 +104,7 @@ def test_ten_edits_while_streaming_take_effect_without_a_step(tmp_path, jack_ser
     watcher = FileWatcher(eng, f, interval=0.05).start()
     thresholds = [-29.0 + 2 * i for i in range(10)]  # each edit: 1 dB less gain reduction
     try:
-        time.sleep(0.8)  # past the fade-in
+        stream_until(eng, 0.8)  # past the fade-in
         grs = []
         for i, thr in enumerate(thresholds):
             write(f, CURVE.format(v=i + 1, thr=thr))
@@ -111,7 +112,7 @@ def test_ten_edits_while_streaming_take_effect_without_a_step(tmp_path, jack_ser
             assert wait_for(lambda: watcher.versions == i + 1, 30), \
                 (i, watcher.last_error, eng.take_notices())
             assert eng.proc.algorithm.digest == digest
-            time.sleep(0.25)  # let the meters follow
+            stream_for(eng, 0.25)  # let the meters follow
             grs.append(eng.snapshot()["gain_reduction_db"])
         stats = eng.stats.copy()
         ring = eng.elring[:min(int(stats[cb.S_BLOCKS]), len(eng.elring))].copy()
@@ -175,13 +176,13 @@ def test_a_switch_without_crossfade_breaks_the_bound(tmp_path, jack_server):
     write(f, CURVE.format(v=0, thr=-30.0))
     eng = start_engine(f, record=tmp_path / "rec", attack=1.0, release=300.0)
     try:
-        time.sleep(0.8)
+        stream_until(eng, 0.8)
         # three switches (a switch that lands near a zero crossing makes no step; three in a
         # row all doing so is unlikely, well under 1 %)
         for i, thr in enumerate((-10.0, -30.0, -10.0)):
             write(f, CURVE.format(v=i + 1, thr=thr))  # 10 dB less, then more, reduction
             eng.swap(load(f), xfade_ms=1000.0 / FS)
-            time.sleep(0.25)
+            stream_for(eng, 0.25)
     finally:
         eng.stop()
     y, _ = read(tmp_path / "rec" / "out.wav")
@@ -222,7 +223,7 @@ def test_broken_versions_are_refused_and_the_old_one_keeps_playing(tmp_path, jac
     watcher = FileWatcher(eng, f, interval=0.05).start()
     running = eng.proc.algorithm.digest
     try:
-        time.sleep(0.6)
+        stream_until(eng, 0.6)
         for i, (what, (text, words)) in enumerate(BAD.items()):
             frames0 = int(eng.stats[cb.S_FRAMES])
             write(f, text)
@@ -276,7 +277,7 @@ def test_the_overrun_guard_bypasses_a_kernel_that_is_too_slow_live(tmp_path, jac
     write(f, GUARDED)
     eng = start_engine(f, record=tmp_path / "rec")
     try:
-        time.sleep(0.7)
+        stream_until(eng, 0.7)
         assert eng.guard_tripped() is None
         out_before = peak_out(eng)
         assert out_before == pytest.approx(20 * np.log10(A * 0.5), abs=0.3)  # the kernel's -6 dB
@@ -284,7 +285,7 @@ def test_the_overrun_guard_bypasses_a_kernel_that_is_too_slow_live(tmp_path, jac
         assert wait_for(lambda: eng.guard_tripped() is not None, 5)
         msg = eng.guard_tripped()
         assert "bypassed, the stream goes on" in msg and "\n" not in msg
-        time.sleep(0.3)
+        stream_for(eng, 0.3)
         frames0 = int(eng.stats[cb.S_FRAMES])
         assert wait_for(lambda: int(eng.stats[cb.S_FRAMES]) > frames0 + FS // 4, 3)
         assert eng.alive()
@@ -296,7 +297,7 @@ def test_the_overrun_guard_bypasses_a_kernel_that_is_too_slow_live(tmp_path, jac
         eng.set("spin", 0)
         info = eng.reset_guard()
         assert info is not None and eng.guard_tripped() is None
-        time.sleep(0.3)
+        stream_for(eng, 0.3)
         assert peak_out(eng) == pytest.approx(out_before, abs=0.3)
     finally:
         eng.stop()
@@ -317,7 +318,7 @@ def test_the_key_monitor_plays_a_user_kernels_key(tmp_path, jack_server):
     eng = start_engine(f, record=tmp_path / "rec")
     try:
         eng.monitor("key")
-        time.sleep(1.0)
+        stream_until(eng, 1.0)
     finally:
         eng.stop()
     y, _ = read(tmp_path / "rec" / "out.wav")
@@ -333,11 +334,11 @@ def test_a_user_kernel_writing_nan_is_caught_by_the_last_stage(tmp_path, jack_se
     write(f, GUARDED)
     eng = start_engine(f)
     try:
-        time.sleep(0.7)
+        stream_until(eng, 0.7)
         assert eng.snapshot()["nonfinite_blocks"] == 0
         seq = eng.set("poison", 1)
         assert eng.wait_applied(seq) is not None
-        time.sleep(0.2)
+        stream_for(eng, 0.2)
         snap = eng.snapshot()
         assert snap["nonfinite_blocks"] > 10
         assert snap["peak_out_dbfs"][0] <= -199  # muted blocks, not NaN on the wire

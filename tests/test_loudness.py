@@ -302,8 +302,9 @@ def _no_subnormals(a):
 
 
 def test_no_subnormals_after_loud_then_silence():
-    # HOUSE rule (denormals): loud input, then 10 s of silence, checked every 100 ms (the
-    # 38 Hz high-pass state would pass through subnormals about 3 s into the silence)
+    # No subnormals (DEVELOPERS.md, "The kernel contract"): loud input, then 10 s of silence,
+    # checked every 100 ms (the 38 Hz high-pass state would pass through subnormals about 3 s into
+    # the silence)
     fs = 48000
     rng = np.random.default_rng(6)
     m = meters.LoudnessMeter(fs, 2)

@@ -18,8 +18,8 @@ Sources of the checks
 * Ceiling: the limiter's design guarantee (``livedyn.dsp.limiter`` module docstring: no output
   sample passes the ceiling), with the float32 rounding of the output allowed
   (ceiling * (1 + 2**-23)); the same form as tests/test_limiter.py.
-* Bit-identical output whatever the block size: the project's real-time contract (house plan,
-  section 3). Block sizes 1, 63, 4097: common practice, no source.
+* Bit-identical output whatever the block size: the project's kernel contract (DEVELOPERS.md,
+  "The kernel contract"). Block sizes 1, 63, 4097: common practice, no source.
 * Hold: the parameter's own definition (``livedyn.params``: "time gain is held after the
   detector stops asking for change, before release"); hold is not part of Giannoulis, Massberg
   and Reiss (2012), eq. (17), whose decoupled detector it extends (common practice, no source).

@@ -4,18 +4,19 @@ summary loudness, key input and the progress bar.
 Sources of the checks
 ---------------------
 * The render runs the same Processor as the live engine, block by block: its output must equal
-  one in-memory ``Processor.process`` call over the whole signal (house plan, sections 2 and 3:
-  identical output whatever the block split).
-* Latency is reported, never hidden (house plan, section 4); ``render``'s module docstring
-  defines the default output as aligned with the input (latency taken off the front, tail
-  flushed with silence) and ``keep_latency`` as the raw stream.
+  one in-memory ``Processor.process`` call over the whole signal (DEVELOPERS.md, "The kernel
+  contract": identical output whatever the block split).
+* Latency is reported, never hidden (DEVELOPERS.md, "Conventions the tests rely on");
+  ``render``'s module docstring defines the default output as aligned with the input (latency
+  taken off the front, tail flushed with silence) and ``keep_latency`` as the raw stream.
 * Integer PCM is written as ``round(x * 2**(bits - 1))``, round half to even, clipped
   (``livedyn.wavio`` module docstring); the expected integers are computed here with numpy.
 * Static curve: Giannoulis, Massberg and Reiss, JAES 60(6) 2012, eq. (4), through the
   independent implementation in ``tests/reference.py``; level detection ``20 log10 |x|``
   (same paper, section 2).
 * Key high-pass: Audio EQ Cookbook high-pass at Q = 1/sqrt(2), which equals
-  ``scipy.signal.butter(2, f0, 'highpass', fs=fs)`` (house plan, section 4).
+  ``scipy.signal.butter(2, f0, 'highpass', fs=fs)`` (DEVELOPERS.md, "Conventions the tests
+  rely on").
 * Loudness: ITU-R BS.1770-4 through pyloudnorm (a BS.1770 implementation from the package
   registry; within 0.1 LU, the tolerance tests/test_loudness.py justifies for its default
   K-weighting filter) and livedyn.meters on the written file.
@@ -372,7 +373,7 @@ def test_key_file_drives_a_ducker(tmp_path):
     assert level_db(y[3 * FS:]) - level_db(main[3 * FS:]) == pytest.approx(-12.0, abs=0.1)
     assert s.gain_reduction_max_db == pytest.approx(12.0, abs=0.05)
     # the key trace is the key file, filtered by the preset's 150 Hz high-pass and 5 kHz
-    # low-pass (Audio EQ Cookbook = scipy.signal.butter(2, ...), house plan section 4)
+    # low-pass (Audio EQ Cookbook = scipy.signal.butter(2, ...), DEVELOPERS.md conventions)
     kt, _ = read(tmp_path / "tr" / "key.wav")
     assert kt[:n].tobytes() == key.tobytes()
     kfilt, _ = read(tmp_path / "tr" / "key_filtered.wav")

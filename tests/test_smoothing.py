@@ -36,7 +36,8 @@ def run_threshold_step(blocksize, fs=48000):
 def test_threshold_step_artefacts_below_minus_80_dbc():
     # A 10 dB threshold step on a 1 kHz sine at -6 dBFS changes the gain by 7.5 dB. With the
     # per-sample glide (tau = GLIDE_MS) the modulation it causes falls off outside the glide's
-    # bandwidth; from 10x that bandwidth on, nothing may stand above -80 dBc (the bound).
+    # bandwidth; from 10x that bandwidth on, nothing may stand above -80 dBc (our own bound:
+    # DEVELOPERS.md, "Conventions the tests rely on"; no outside source).
     fs = 48000
     bandwidth = 1 / (2 * np.pi * GLIDE_MS / 1000)  # one-pole -3 dB frequency, Hz
     y = run_threshold_step(64, fs)

@@ -211,9 +211,10 @@ def _no_subnormals(a):
 
 
 def test_no_subnormals_after_loud_then_silence():
-    # HOUSE rule (denormals): loud input, then 10 s of near-silence made of float32 subnormals
-    # (1e-40). The ring holds only input samples, and the documented flush stores samples below
-    # 1e-30 as exact zeros, so after 12 such samples the ring is all zero.
+    # No subnormals (DEVELOPERS.md, "The kernel contract"): loud input, then 10 s of near-silence
+    # made of float32 subnormals (1e-40). The ring holds only input samples, and the documented
+    # flush stores samples below 1e-30 as exact zeros, so after 12 such samples the ring is all
+    # zero.
     fs = 48000
     m = meters.TruePeakMeter(fs, 2)
     loud = faded_sine(fs, 997.0, 0.0, n=4800, amp=0.9)

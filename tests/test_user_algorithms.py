@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 import livedyn
-from livedyn.algorithms.user import UserAlgorithmError, load
+from livedyn.loader import UserAlgorithmError, load
 
 PLAIN = '''
 """Hard-knee compressor curve, written as a user file."""
@@ -51,7 +51,7 @@ def test_a_user_curve_equal_to_the_builtin_gives_the_same_output(tmp_path):
     # the same equation ([GMR2012] eq. 3) written by a user, run in the same kernel: identical
     f = write(tmp_path, PLAIN)
     x = noise()
-    a = livedyn.Processor(str(f), 48000, 2, threshold=-24, ratio=4, attack=5, release=80)
+    a = livedyn.Processor(load(f), 48000, 2, threshold=-24, ratio=4, attack=5, release=80)
     b = livedyn.Processor("compressor", 48000, 2, threshold=-24, ratio=4, attack=5,
                           release=80, knee=0)
     np.testing.assert_array_equal(a.process(x), b.process(x))
@@ -60,7 +60,7 @@ def test_a_user_curve_equal_to_the_builtin_gives_the_same_output(tmp_path):
 
 def test_own_parameters_get_slots_and_are_validated(tmp_path):
     f = write(tmp_path, OWN)
-    p = livedyn.Processor(str(f), 48000, 1, threshold=-30, growth=6, attack=0)
+    p = livedyn.Processor(load(f), 48000, 1, threshold=-30, growth=6, attack=0)
     assert p.get("growth") == 6
     with pytest.raises(livedyn.params.ParamError, match="growth = 80 dB: out of range"):
         p.set("growth", 80)
@@ -155,8 +155,8 @@ def test_a_user_file_live_equals_its_offline_render(tmp_path, jack_server):
 
     f = write(tmp_path, OWN)
     x = noise(48000)
-    proc = livedyn.Processor(str(f), 48000, 2, threshold=-30, attack=2)
-    ref = livedyn.Processor(str(f), 48000, 2, threshold=-30, attack=2)
+    proc = livedyn.Processor(load(f), 48000, 2, threshold=-30, attack=2)
+    ref = livedyn.Processor(load(f), 48000, 2, threshold=-30, attack=2)
     eng = Engine(proc, 64, main_source=ArraySource(x), record_dir=tmp_path / "rec",
                  fade_in_ms=0.0, meters=False)
     eng.start()

@@ -1,6 +1,7 @@
 """Built-in processors: each is a parameter schema plus a fused per-block kernel.
 
-``get(name)`` returns the :class:`Algorithm`; ``names()`` lists the built-ins.
+``get(name)`` returns the :class:`Algorithm`; ``names()`` lists the built-ins. User files are
+compiled by :mod:`.user` and loaded (checked) by :mod:`livedyn.loader`.
 """
 from __future__ import annotations
 
@@ -14,13 +15,17 @@ def names():
 
 
 def get(name) -> Algorithm:
-    """The built-in algorithm called ``name``."""
+    """The built-in algorithm called ``name`` (an Algorithm is returned as it is).
+
+    An algorithm file (``FILE.py``) is compiled and checked by :func:`livedyn.loader.load`,
+    which runs a Processor and therefore sits above this package; ``livedyn.loader.get``
+    takes names and files alike."""
     if isinstance(name, Algorithm):
         return name
-    from .user import is_user_file, load
-
-    if is_user_file(name):
-        return load(name)
+    if str(name).endswith(".py"):
+        raise AlgorithmError(f"{name}: an algorithm file; load it first with "
+                             "livedyn.loader.load(path) (or livedyn.load_algorithm) and pass "
+                             "the Algorithm")
     try:
         return BUILTINS[str(name).strip().lower()]
     except KeyError:

@@ -128,8 +128,18 @@ def template_text(name, stage="gain_curve", file=None):
     return HEAD.format(name=name, file=file or f"{name}.py") + BODIES[stage]
 
 
-def write_template(name, stage="gain_curve"):
-    """Write NAME.py (never over an existing file); returns its path."""
+def example_names():
+    """The shipped example algorithm files (package data), by stem."""
+    from ..shipped import examples_folder
+
+    return sorted(p.stem for p in examples_folder().glob("*.py"))
+
+
+def write_template(name, stage="gain_curve", example=None):
+    """Write NAME.py (never over an existing file); returns its path.
+
+    With ``example`` (one of :func:`example_names`) the file is a copy of that shipped example
+    instead of a starting template."""
     path = Path(name)
     if path.suffix != ".py":
         path = path.with_name(path.name + ".py")
@@ -140,7 +150,15 @@ def write_template(name, stage="gain_curve"):
         raise ParamError(f"{path}: exists; choose another name (livedyn never overwrites it)")
     if not path.parent.is_dir():
         raise ParamError(f"{path}: folder {path.parent} does not exist")
-    text = template_text(stem, stage, file=str(path))
+    if example is not None:
+        from ..shipped import examples_folder
+
+        have = example_names()
+        if example not in have:
+            raise ParamError(f"--example {example!r}: expected one of {', '.join(have)}")
+        text = (examples_folder() / f"{example}.py").read_text(encoding="utf-8")
+    else:
+        text = template_text(stem, stage, file=str(path))
     with open(path, "x", encoding="utf-8") as f:  # "x": fails rather than overwrite
         f.write(text)
     return path

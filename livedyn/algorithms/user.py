@@ -44,8 +44,8 @@ frame size and its latency in samples).
 Every stage is compiled with numba in nopython mode (``error_model="numpy"``, no fastmath) off
 the audio thread. The stages run inside the built-in cached kernel, called through their
 addresses (:mod:`livedyn.dsp.calls`); a whole kernel becomes a job function of its own. After
-compiling, :mod:`livedyn.algorithms.checks` runs the file on test signals and refuses it if it
-is unsafe.
+compiling, :mod:`livedyn.checks` runs the file on test signals and refuses it if it is unsafe;
+:func:`livedyn.loader.load` does both (this module only compiles).
 """
 from __future__ import annotations
 
@@ -54,7 +54,6 @@ import hashlib
 import importlib.util
 import re
 import sys
-import threading
 import traceback
 from pathlib import Path
 
@@ -65,12 +64,11 @@ from ..params import (
     USER_SLOT0, Param, ParamError, Schema,
 )
 
-__all__ = ["UserAlgorithmError", "load", "user_param", "is_user_file", "STAGES", "MAX_STATE"]
+__all__ = ["UserAlgorithmError", "read_source", "compile_file", "user_param", "is_user_file",
+           "STAGES", "MAX_STATE"]
 
 STAGES = ("detector", "gain_curve", "smoother", "kernel")
 MAX_STATE = 4096  # declared state slots per channel
-_CACHE = {}  # (path, digest, checked) -> Algorithm: each version is compiled and checked once
-_CACHE_LOCK = threading.Lock()
 
 
 class UserAlgorithmError(ParamError):
@@ -105,12 +103,9 @@ def _where(path, exc, line=None):
     return f"{path}:{line}" if line else str(path)
 
 
-def load(path, check=True):
-    """Load, compile and check a user algorithm file; returns an Algorithm.
-
-    Raises UserAlgorithmError (one line; ``.detail`` for the full message) when the file cannot
-    be read, does not compile in nopython mode, or fails a safety check. Each version of a file
-    (by content) is compiled and checked once per process."""
+def read_source(path):
+    """``(resolved path, source text, digest)`` of an algorithm file; UserAlgorithmError if it
+    cannot be read. The digest (12 hex digits of SHA-256) names the version."""
     path = Path(path).resolve()
     if not path.is_file():
         raise UserAlgorithmError(f"{path}: no such algorithm file (expected a .py file)")
@@ -118,19 +113,16 @@ def load(path, check=True):
         source = path.read_text(encoding="utf-8", errors="replace")
     except OSError as e:
         raise UserAlgorithmError(f"{path}: cannot read: {e.strerror}") from None
-    digest = hashlib.sha256(source.encode()).hexdigest()[:12]
-    with _CACHE_LOCK:
-        got = _CACHE.get((path, digest, check))
-    if got is not None:
-        return got
-    alg = _build(path, source, digest)
-    if check:
-        from .checks import check_algorithm
+    return path, source, hashlib.sha256(source.encode()).hexdigest()[:12]
 
-        alg = check_algorithm(alg)
-    with _CACHE_LOCK:
-        _CACHE[(path, digest, check)] = alg
-    return alg
+
+def compile_file(path, source, digest):
+    """Compile one version of an algorithm file (from :func:`read_source`) into an Algorithm.
+
+    Only compiles: the load-time checks, the cache of versions and the lookup by path belong to
+    :mod:`livedyn.loader`, which sits above the Processor that the checks run. Raises
+    UserAlgorithmError (one line; ``.detail`` for the full message)."""
+    return _build(Path(path), source, digest)
 
 
 def _build(path, source, digest):

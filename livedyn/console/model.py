@@ -40,8 +40,6 @@ from .steps import (  # noqa: F401  (re-exported: the steps are part of the cons
 #: Seconds of input the level match measures, and the least it accepts.
 MATCH_SECONDS = 4.0
 MATCH_MIN_SECONDS = 1.0
-#: Gate of BS.1770-4 (absolute, LUFS): a render quieter than this cannot be measured.
-ABS_GATE_LUFS = -70.0
 UNDO_DEPTH = 200
 #: Seconds a question (quit while sound plays, replace a preset) waits for its answer.
 ASK_SECONDS = 8.0
@@ -506,54 +504,35 @@ class ConsoleModel(CommandLine, Metering):
 
     def render_slot(self, slot, main, key=None):
         """Process ``main`` (and ``key``) offline with a fresh Processor holding ``slot``'s
-        values (without any match trim)."""
-        from ..processor import Processor
+        values (without any match trim); :func:`livedyn.analysis.render_with` does it."""
+        from ..analysis import LevelMatchError, render_with
 
-        p = Processor(self.algorithm, self.samplerate, self.proc.channels,
-                      getattr(self.proc, "key_channels", 0))
-        values = dict(self.slots[slot])
-        progress = True
-        errors = {}
-        while values and progress:  # same pass order rule as _apply
-            progress = False
-            for n in list(values):
-                try:
-                    p.set(n, values[n])
-                except ParamError as e:
-                    errors[n] = e
-                    continue
-                del values[n]
-                progress = True
-        if values:
-            raise errors[next(iter(values))]
-        if "key" in self.schema and int(self.slots[slot]["key"]) == KEY_EXTERNAL and key is None:
-            raise ConsoleError("match: the key input is needed (key = external) but the engine "
-                               "gave no recent key input")
-        return p.process(main, key if p.key_channels else None)
+        try:
+            return render_with(self.algorithm, self.samplerate, self.proc.channels,
+                               getattr(self.proc, "key_channels", 0), self.slots[slot], main,
+                               key)
+        except LevelMatchError as e:
+            raise ConsoleError(f"match: {e}") from None
 
     def _measure_match(self):
         """Measure both slots on the recent input and set :attr:`trims`.
 
-        Each slot's values process the same recent input offline; the integrated loudness of
-        each output (ITU-R BS.1770-4, :func:`livedyn.meters.integrated_loudness`) is compared
-        and the louder slot gets a negative trim of the difference, applied on its makeup.
+        :func:`livedyn.analysis.level_match` processes the same recent input offline with each
+        slot's values, compares the integrated loudness of the outputs (ITU-R BS.1770-4) and
+        gives the louder slot a negative trim of the difference, applied on its makeup.
         """
-        from ..meters import integrated_loudness
+        from ..analysis import LevelMatchError, level_match
 
         main, key = self._recent_input()
-        loud = {}
-        for s in ("a", "b"):
-            y = self.render_slot(s, main, key)
-            loud[s] = float(integrated_loudness(y, self.samplerate))
-        quiet = [s.upper() for s, v in loud.items() if not v > ABS_GATE_LUFS]
-        if quiet:
-            raise ConsoleError(f"match: slot {' and '.join(quiet)} measures below the "
-                               f"{ABS_GATE_LUFS:g} LUFS gate of BS.1770 on the recent input; "
-                               "play something and try again")
-        d = loud["a"] - loud["b"]
-        self.loudness = loud
-        self.trims = {"a": 0.0 - max(d, 0.0), "b": 0.0 - max(-d, 0.0)}  # no "-0.0"
-        self._match_measured_s = len(main) / self.samplerate
+        try:
+            m = level_match(self.algorithm, self.samplerate, self.proc.channels,
+                            getattr(self.proc, "key_channels", 0),
+                            {s: self.slots[s] for s in ("a", "b")}, main, key)
+        except LevelMatchError as e:
+            raise ConsoleError(f"match: {e}") from None
+        self.loudness = m.loudness
+        self.trims = m.trims
+        self._match_measured_s = m.seconds
         mk = self.schema["makeup"]
         self.trim_limited = any(
             not (mk.lo <= self.slots[s]["makeup"] + self.trims[s] <= mk.hi) for s in "ab")

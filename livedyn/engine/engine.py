@@ -553,14 +553,7 @@ class Engine:
             if name == OUTPUT_LEVEL.name:  # the engine's own, not the algorithm's
                 self.pend[P_OUTPUT_LEVEL] = OUTPUT_LEVEL.parse(value)
                 return int(cb.publish_params(self.ud, self.pend))
-            prm = self.proc.schema[name]
-            v = prm.parse(value)
-            trial = self.pend.copy()
-            trial[prm.slot] = v
-            self.proc._check_combination(trial)
-            if prm.name in ("key_lpf", "key_bpf") and v >= self.fs / 2:
-                raise ParamError(f"{prm.name} = {v:g} Hz: must be below half the sample rate "
-                                 f"({self.fs / 2:g} Hz)")
+            prm, v = self.proc.validate(name, value, self.pend)
             self.pend[prm.slot] = v
             seq = int(cb.publish_params(self.ud, self.pend))
             self._changes.append((seq, prm.name, v))
@@ -600,7 +593,7 @@ class Engine:
         trial = self.pend.copy()
         for n, v in pr.values.items():
             trial[self.proc.schema[n].slot] = self.proc.schema[n].check(v)
-        self.proc._check_combination(trial)
+        self.proc.check_combination(trial)
         for n, v in pr.values.items():
             if self.pend[self.proc.schema[n].slot] != v:
                 self.set(n, v)
@@ -620,9 +613,9 @@ class Engine:
         old version's code and state stay alive until that echo. Returns a dict of what
         happened; raises EngineError when the stream stops (no block for ``stall_seconds``)
         before the callback confirms the switch."""
-        from .. import algorithms
+        from .. import loader
 
-        alg = algorithms.get(algorithm)
+        alg = loader.get(algorithm)
         with self._lock:
             if self.stream is None or self.error is not None:
                 raise EngineError("swap: the stream is not running")
@@ -865,7 +858,7 @@ class Engine:
         if self._swaps_recorded:  # which version ran from which frame
             lines = [f"{f} {a.source or a.name} {a.digest}".rstrip()
                      for f, a in [(0, self._first_alg)] + self._swaps_recorded]
-            from ..presets import write_text_atomic
+            from ..files import write_text_atomic
 
             write_text_atomic(self.record_dir / "versions.txt",
                               "# FRAME ALGORITHM (file or name) CONTENT HASH\n"

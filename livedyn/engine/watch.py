@@ -72,7 +72,7 @@ class FileWatcher:
 
     def reload(self):
         """Load, check and swap in the file now (from the calling thread)."""
-        from ..algorithms.user import UserAlgorithmError, load
+        from ..loader import UserAlgorithmError, load
         from ..params import ParamError
         from .engine import EngineError
 

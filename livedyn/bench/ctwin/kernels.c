@@ -1,5 +1,5 @@
 /*
- * Plain-C twins of livedyn's fused kernels, for the kernel benchmark (bench/ctwin.py).
+ * Plain-C twins of livedyn's fused kernels, for the kernel benchmark (livedyn/bench/ctwin.py).
  *
  * ctwin_dynamics_block: the compressor, expander, gate and ducker kernel
  *                       (livedyn.dsp.dynamics.dynamics_block), all four gain laws.
@@ -18,11 +18,11 @@
  * instruction, in the limiter, is the exact expansion of t % 4096, equal to fmod here).
  *
  * ctwin_drive_dynamics / ctwin_drive_limiter: consecutive whole blocks over a preallocated
- * signal (as bench.kernels.drive does for the numba kernel); they return the elapsed
+ * signal (as livedyn.bench.kernels.drive does for the numba kernel); they return the elapsed
  * nanoseconds of CLOCK_MONOTONIC around the loop.
  *
  * Every constant (layout rows, parameter slots, choice indices, float constants) comes from the
- * generated header ctwin_consts.h, written by bench/ctwin.py from the Python modules.
+ * generated header ctwin_consts.h, written by livedyn/bench/ctwin.py from the Python modules.
  *
  * References
  * ----------

@@ -1,4 +1,9 @@
-"""``python -m bench kernels [--quick] [--json FILE] [--blocksize N ...]``: kernel cost table."""
+"""``python -m livedyn.bench kernels|ctwin [--quick] ...``: the kernel cost tables.
+
+``kernels``: each built-in kernel against its plain-Python twin (and the plain-C twin where a
+compiler exists); ``ctwin``: the numba kernels against the plain-C twins alone, both timed from
+native block loops. ``livedyn bench`` runs the same harness with the live runs besides.
+"""
 from __future__ import annotations
 
 import argparse
@@ -8,7 +13,7 @@ import sys
 
 def build_parser():
     ap = argparse.ArgumentParser(
-        prog="python -m bench",
+        prog="python -m livedyn.bench",
         description="livedyn measurement harness. 'kernels': check each built-in algorithm's "
                     "numba kernel against its plain-Python twin, then time both.")
     sub = ap.add_subparsers(dest="command", required=True)
@@ -24,19 +29,47 @@ def build_parser():
     k.add_argument("--channels", type=int, default=2, help="main channels (default 2)")
     k.add_argument("--samplerate", type=float, default=48000.0, help="Hz (default 48000)")
     k.add_argument("--seconds", type=float, default=None,
-                   help="length of the timing signal (default 4, --quick 1)")
+                   help="length of the timing signal in s (default 4, --quick 1)")
+    k.add_argument("--wide", action="store_true",
+                   help="every column (the default table fits 100 columns)")
+    c = sub.add_parser(
+        "ctwin", help="numba kernels against their plain-C twins",
+        description="Compile the plain-C twins of the fused kernels, check that they agree "
+                    "with the numba kernels bit for bit, and time both from native block loops.")
+    c.add_argument("--quick", action="store_true", help="fewer repeats, shorter signals")
+    c.add_argument("--blocksize", metavar="N", type=int, action="append",
+                   help="frames per block; repeat for several (default 64 and 1024)")
+    c.add_argument("--repeats", type=int, default=None, help="timed rounds (default 15)")
+    c.add_argument("--seconds", type=float, default=None,
+                   help="length of the timing signal in s (default 4)")
+    c.add_argument("--wide", action="store_true",
+                   help="also the [min-max] spreads (the default table fits 100 columns)")
     return ap
+
+
+def _ctwin(args):
+    from .kernels import run_ctwin
+
+    try:
+        rows = run_ctwin(quick=args.quick, blocksizes=tuple(args.blocksize or (64, 1024)),
+                         repeats=args.repeats, seconds=args.seconds, wide=args.wide)
+    except ValueError as exc:
+        print(f"bench ctwin: {exc}", file=sys.stderr)
+        return 2
+    return 1 if any(r["c_check"] == "MISMATCH" for r in rows) else 0
 
 
 def main(argv=None):
     args = build_parser().parse_args(argv)
+    if args.command == "ctwin":
+        return _ctwin(args)
     from .kernels import machine_info, report, run_kernels
 
     before = machine_info()
     blocksizes = tuple(args.blocksize) if args.blocksize else (64, 1024)
     try:
         rows = run_kernels(quick=args.quick, blocksizes=blocksizes, channels=args.channels,
-                           samplerate=args.samplerate, seconds=args.seconds)
+                           samplerate=args.samplerate, seconds=args.seconds, wide=args.wide)
     except ValueError as exc:
         print(f"bench kernels: {exc}", file=sys.stderr)
         return 2

@@ -8,7 +8,7 @@ product, so that a full run stays within minutes on a 2-core machine:
 * 44.1, 48 and 96 kHz (stereo, block 64).
 
 Every row is checked against the Python twin (and the C twin where a compiler exists) before it
-is timed (bench.kernels.run_kernels). Each row also says how many instances would fit in one
+is timed (livedyn.bench.kernels.run_kernels). Each row also says how many instances would fit in one
 core at 70 % load: ``floor(0.7 * (1e9 / fs) / ns_per_frame)`` (common practice, no source: keep
 30 % of a core for the rest of the system).
 """
@@ -30,8 +30,8 @@ def instances_per_core(ns_per_frame, samplerate, share=CORE_SHARE):
     return int(math.floor(share * (1e9 / samplerate) / ns_per_frame))
 
 
-def run_sweep(quick=False, out=print, progress=None, ctwin=True):
-    """All three axes; returns the rows of bench.kernels.run_kernels with an ``axis`` and an
+def run_sweep(quick=False, out=print, progress=None, ctwin=True, wide=False):
+    """All three axes; returns the rows of livedyn.bench.kernels.run_kernels with an ``axis`` and an
     ``instances_per_core`` key added."""
     from .kernels import run_kernels
 
@@ -44,7 +44,7 @@ def run_sweep(quick=False, out=print, progress=None, ctwin=True):
                  for r in RATES if r != 48000]
     rows = []
     for axis, kw in plan:
-        got = run_kernels(quick=quick, out=out, ctwin=ctwin,
+        got = run_kernels(quick=quick, out=out, ctwin=ctwin, wide=wide,
                           seconds=(0.5 if quick else 1.5), **kw,
                           **({} if progress is None else {"progress": progress}))
         for r in got:

@@ -23,7 +23,7 @@ def _plt():
 
 
 def plot_kernel_cost(rows, path, title="kernel cost against block size"):
-    """ns per frame against block size, one line per case (rows from bench.kernels)."""
+    """ns per frame against block size, one line per case (rows from livedyn.bench.kernels)."""
     plt = _plt()
     fig, ax = plt.subplots(figsize=(7, 4.5), dpi=100)
     cases = sorted({r["case"] for r in rows})

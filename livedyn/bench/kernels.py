@@ -2,7 +2,7 @@
 
 For every case and block size:
 
-1. **check**: the numba kernel and the twin (:mod:`bench.twins`) process the same seeded noise
+1. **check**: the numba kernel and the twin (:mod:`livedyn.bench.twins`) process the same seeded noise
    bursts block by block from identical fresh state; their outputs must agree within
    :data:`TOLERANCE`. A case whose twin disagrees gets no timings, only the mismatch.
 2. **numba**: an ``@njit`` driver calls the kernel block after block over a preallocated input, so
@@ -16,7 +16,7 @@ For every case and block size:
    reported as the extra microseconds per block over the numba-driven figure (median over the
    rounds of the difference to the numba-driven run just before it, under similar load).
 4. **twin**: the twin on a shorter signal, ns per frame, and the ratio twin / numba.
-5. **C**: the plain-C twin (:mod:`bench.ctwin`), compiled at bench time with the system C
+5. **C**: the plain-C twin (:mod:`livedyn.bench.ctwin`), compiled at bench time with the system C
    compiler, is checked against the numba kernel on the check signal (it is expected to be
    bit-identical) and timed from its own C block loop in every round, right after the numba
    run; ``numba/C`` is the ratio of the medians. Without a compiler the C columns are empty
@@ -102,7 +102,7 @@ def noise_bursts(seed, frames, channels, samplerate):
 
 
 def _ct():
-    """bench.ctwin, imported on first use (so that ``python -m bench.ctwin`` runs it once)."""
+    """livedyn.bench.ctwin, imported on first use (it builds nothing until asked)."""
     from . import ctwin
 
     return ctwin
@@ -308,7 +308,7 @@ class Timer:
         self.twin_ns.append((time.perf_counter_ns() - t0) / n)
 
     def attach_ctwin(self, lib):
-        """Also time the C twin (``lib``, a :class:`bench.ctwin.CTwin`) in every round."""
+        """Also time the C twin (``lib``, a :class:`livedyn.bench.ctwin.CTwin`) in every round."""
         self.c_lib = lib
         self.p_c, self.st_c, self.ring_c = self.s.fresh()
         self.out_c = np.zeros_like(self.s.x)
@@ -384,7 +384,7 @@ def _stderr(msg):
 
 def run_kernels(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, seconds=None,
                 out=print, *, repeats=None, check_seconds=CHECK_SECONDS, twin_seconds=None,
-                twin_repeats=None, cases=CASES, progress=_stderr, ctwin=True):
+                twin_repeats=None, cases=CASES, progress=_stderr, ctwin=True, wide=False):
     """Check every case's kernel against its twin, time both, print a table; return the rows.
 
     The timed runs are interleaved: each round times every case once, so that changes in the
@@ -417,8 +417,10 @@ def run_kernels(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000
     progress : callable or None
         Receives progress messages (stderr by default).
     ctwin : bool
-        Also check and time the plain-C twin (:mod:`bench.ctwin`); compiled on first use. Where
+        Also check and time the plain-C twin (:mod:`livedyn.bench.ctwin`); compiled on first use. Where
         no C compiler exists its columns stay empty and the table says why.
+    wide : bool
+        Print every column (wider than 100 characters); see :func:`format_table`.
 
     Returns
     -------
@@ -502,7 +504,7 @@ def run_kernels(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000
         row.update(t.result())
         row.update(t.c_result())
     if out is not None:
-        for line in format_table(rows, info, repeats, c_note=c_note):
+        for line in format_table(rows, info, repeats, c_note=c_note, wide=wide):
             out(line)
     return rows
 
@@ -567,11 +569,11 @@ class CPair:
 
 def run_ctwin(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, seconds=None,
               out=print, *, repeats=None, check_seconds=CHECK_SECONDS, cases=CASES,
-              progress=_stderr, lib=None):
+              progress=_stderr, lib=None, wide=False):
     """The numba kernels against their plain-C twins: check, time both, print a table.
 
     Each case runs from identical fresh state on the same seeded noise bursts. The C twin
-    (:mod:`bench.ctwin`) must agree with the numba kernel on the check signal (bit-identical is
+    (:mod:`livedyn.bench.ctwin`) must agree with the numba kernel on the check signal (bit-identical is
     expected; within :data:`TOLERANCE` is accepted and shown) and again over the whole timing
     signal. Timing: the numba kernel from an ``@njit`` block loop, the C twin from a C block
     loop in the same library as the clock; both loops read ``CLOCK_MONOTONIC`` around
@@ -600,8 +602,8 @@ def run_ctwin(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, 
         What to run.
     progress : callable or None
         Receives progress messages.
-    lib : bench.ctwin.CTwin, optional
-        The C twin (default: :func:`bench.ctwin.load`).
+    lib : livedyn.bench.ctwin.CTwin, optional
+        The C twin (default: :func:`livedyn.bench.ctwin.load`).
 
     Returns
     -------
@@ -658,13 +660,14 @@ def run_ctwin(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, 
         for row, pr in pairs:
             row.update(pr.result())
     if out is not None:
-        for line in format_ctwin_table(rows, info, lib, note):
+        for line in format_ctwin_table(rows, info, lib, note, wide=wide):
             out(line)
     return rows
 
 
-def format_ctwin_table(rows, info=None, lib=None, note=None):
-    """The rows of :func:`run_ctwin` as lines of a text table."""
+def format_ctwin_table(rows, info=None, lib=None, note=None, wide=False):
+    """The rows of :func:`run_ctwin` as lines of a text table (:data:`NARROW` columns; with
+    ``wide`` also the [min-max] spreads)."""
     lines = []
     if info is not None:
         load = info.get("load_average_1_5_15")
@@ -675,9 +678,14 @@ def format_ctwin_table(rows, info=None, lib=None, note=None):
     if rows:
         r0 = rows[0]
         lines.append(f"{r0['channels']} ch, {r0['samplerate']:g} Hz; ns per frame (all channels), "
-                     f"median [min-max] of {r0['repeats'] or '-'} interleaved runs each")
-    head = (f"{'case':<22}{'block':>6}  {'check':<14}{'numba ns/fr':>12} {'[min-max]':<14}"
-            f"{'C ns/fr':>9} {'[min-max]':<14}{'numba/C':>8}{'of minima':>10}{'paired':>8}")
+                     f"median{' [min-max]' if wide else ''} of {r0['repeats'] or '-'} "
+                     "interleaved runs each")
+    if wide:
+        head = (f"{'case':<22}{'block':>6}  {'check':<14}{'numba ns/fr':>12} {'[min-max]':<14}"
+                f"{'C ns/fr':>9} {'[min-max]':<14}{'numba/C':>8}{'of minima':>10}{'paired':>8}")
+    else:
+        head = (f"{'case':<22}{'block':>6}  {'check':<14}{'numba ns/fr':>12}{'C ns/fr':>9}"
+                f"{'numba/C':>8}{'of minima':>10}{'paired':>8}")
     lines.append(head)
     lines.append("-" * len(head))
     for r in rows:
@@ -693,12 +701,18 @@ def format_ctwin_table(rows, info=None, lib=None, note=None):
             continue
         ns = f"[{r['numba_ns_min']:.1f}-{r['numba_ns_max']:.1f}]"
         cs = f"[{r['c_ns_min']:.1f}-{r['c_ns_max']:.1f}]"
-        lines.append(
-            f"{r['case']:<22}{r['blocksize']:>6}  {chk:<14}{r['numba_ns_per_frame']:>12.1f} "
-            f"{ns:<14}{r['c_ns_per_frame']:>9.1f} {cs:<14}{r['numba_over_c']:>8.2f}"
-            f"{r['numba_over_c_of_minima']:>10.2f}{r['numba_over_c_paired']:>8.2f}")
-    lines.append("numba/C: ratio of the medians; of minima: of the fastest runs; paired: median "
-                 "of the per-round ratios (numba and C run back to back).")
+        ratios = (f"{r['numba_over_c']:>8.2f}{r['numba_over_c_of_minima']:>10.2f}"
+                  f"{r['numba_over_c_paired']:>8.2f}")
+        if wide:
+            lines.append(
+                f"{r['case']:<22}{r['blocksize']:>6}  {chk:<14}{r['numba_ns_per_frame']:>12.1f} "
+                f"{ns:<14}{r['c_ns_per_frame']:>9.1f} {cs:<14}{ratios}")
+        else:
+            lines.append(
+                f"{r['case']:<22}{r['blocksize']:>6}  {chk:<14}{r['numba_ns_per_frame']:>12.1f}"
+                f"{r['c_ns_per_frame']:>9.1f}{ratios}")
+    lines.append("numba/C: ratio of the medians; of minima: of the fastest runs; paired: median")
+    lines.append("  of the per-round ratios (numba and C run back to back).")
     if any(r["c_driver_identical"] is False for r in rows):
         lines.append("*: outputs or states differed over the whole timing signal.")
     return lines
@@ -760,8 +774,26 @@ def _c_cells(r):
     return f"{r['c_ns_per_frame']:.1f}", f"{r['numba_over_c']:.2f}"
 
 
-def format_table(rows, info=None, repeats=None, c_note=None):
-    """The rows as lines of a text table; ``c_note`` says why the C columns are empty."""
+#: Width of the default table; ``wide=True`` (``--wide``) adds the remaining columns.
+NARROW = 100
+
+
+def cost_cell(v, fmt=".2f"):
+    """A call-cost cell: the extra microseconds, or "within noise" when the difference of two
+    medians came out negative (the Python call cannot be faster than no call; on a loaded
+    machine the difference is below what one run can resolve)."""
+    if v is None:
+        return "-"
+    return "within noise" if v < 0 else format(v, fmt)
+
+
+def format_table(rows, info=None, repeats=None, c_note=None, wide=False):
+    """The rows as lines of a text table; ``c_note`` says why the C columns are empty.
+
+    The default table fits :data:`NARROW` columns (case, block, check, numba ns/fr,
+    x realtime, call +us, proc +us, numba/C); ``wide`` adds the numba spread, us per block,
+    the twin's ns per frame and ratio, and the C twin's ns per frame.
+    """
     lines = []
     if info is not None:
         load = info.get("load_average_1_5_15")
@@ -771,12 +803,15 @@ def format_table(rows, info=None, repeats=None, c_note=None):
     if rows:
         r0 = rows[0]
         lines.append(f"{r0['channels']} ch, {r0['samplerate']:g} Hz; ns per frame (all channels); "
-                     f"numba = median [min-max] of {repeats or r0['repeats'] or '-'} runs; "
-                     "check tolerance "
-                     f"{TOLERANCE:g}")
-    head = (f"{'case':<22}{'block':>6}  {'check':<14}{'numba ns/fr':>12} {'[min-max]':<14}"
-            f"{'us/blk':>8}{'x realtime':>11}{'call +us':>10}{'proc +us':>10}"
-            f"{'twin ns/fr':>12}{'twin/numba':>11}{'C ns/fr':>10}{'numba/C':>9}")
+                     f"numba = median{' [min-max]' if wide else ''} of "
+                     f"{repeats or r0['repeats'] or '-'} runs; check tolerance {TOLERANCE:g}")
+    if wide:
+        head = (f"{'case':<21}{'block':>6}  {'check':<14}{'numba ns/fr':>11} {'[min-max]':<14}"
+                f"{'us/blk':>8}{'x realtime':>11}{'call +us':>13}{'proc +us':>13}"
+                f"{'twin ns/fr':>12}{'twin/numba':>11}{'C ns/fr':>10}{'numba/C':>9}")
+    else:
+        head = (f"{'case':<21}{'block':>6}  {'check':<14}{'numba ns/fr':>11}{'x realtime':>11}"
+                f"{'call +us':>13}{'proc +us':>13}{'numba/C':>9}")
     lines.append(head)
     lines.append("-" * len(head))
     for r in rows:
@@ -785,27 +820,35 @@ def format_table(rows, info=None, repeats=None, c_note=None):
         else:
             chk = "MISMATCH"
         if r["numba_ns_per_frame"] is None:
-            lines.append(f"{r['case']:<22}{r['blocksize']:>6}  {chk:<14}"
+            lines.append(f"{r['case'][:21]:<21}{r['blocksize']:>6}  {chk:<14}"
                          f"no timings: {r['mismatch']} (max |diff| {r['max_abs_diff']:.3g})")
             continue
-        spread = f"[{r['numba_ns_min']:.1f}-{r['numba_ns_max']:.1f}]"
-        lines.append(
-            f"{r['case']:<22}{r['blocksize']:>6}  {chk:<14}{r['numba_ns_per_frame']:>12.1f} "
-            f"{spread:<14}{r['us_per_block']:>8.2f}{r['x_realtime']:>11.0f}"
-            f"{_num(r['py_call_overhead_us_per_block'], '.2f'):>10}"
-            f"{_num(r['process_overhead_us_per_block'], '.2f'):>10}"
-            f"{r['twin_ns_per_frame']:>12.0f}{r['twin_ratio']:>11.0f}"
-            + "{:>10}{:>9}".format(*_c_cells(r)))
-    lines.append("call +us / proc +us: extra time per block when each block is a Python call to "
-                 "the kernel / to Processor.process.")
+        calls = (f"{cost_cell(r['py_call_overhead_us_per_block']):>13}"
+                 f"{cost_cell(r['process_overhead_us_per_block']):>13}")
+        c_ns, c_ratio = _c_cells(r)
+        if wide:
+            spread = f"[{r['numba_ns_min']:.1f}-{r['numba_ns_max']:.1f}]"
+            lines.append(
+                f"{r['case'][:21]:<21}{r['blocksize']:>6}  {chk:<14}"
+                f"{r['numba_ns_per_frame']:>11.1f} {spread:<14}{r['us_per_block']:>8.2f}"
+                f"{r['x_realtime']:>11.0f}{calls}{r['twin_ns_per_frame']:>12.0f}"
+                f"{r['twin_ratio']:>11.0f}{c_ns:>10}{c_ratio:>9}")
+        else:
+            lines.append(
+                f"{r['case'][:21]:<21}{r['blocksize']:>6}  {chk:<14}"
+                f"{r['numba_ns_per_frame']:>11.1f}{r['x_realtime']:>11.0f}{calls}{c_ratio:>9}")
+    lines.append("call +us / proc +us: extra time per block when each block is a Python call to")
+    lines.append("  the kernel / to Processor.process; within noise: the difference came out < 0.")
     if c_note:
-        lines.append(f"C ns/fr, numba/C: {c_note}")
+        lines.append(f"numba/C: {c_note}")
     else:
-        lines.append("C ns/fr: the plain-C twin (bench/ctwin/kernels.c) from a C block loop, "
-                     "median; numba/C: ratio of the medians (numba = the column above).")
+        lines.append("numba/C: numba median / the plain-C twin's (livedyn/bench/ctwin/kernels.c)")
+        lines.append("  median, both from native block loops.")
         bad = [f"{r['case']} {r['blocksize']}" for r in rows if r.get("c_check") == "MISMATCH"]
         if bad:
             lines.append("C twin MISMATCH (no C timings): " + ", ".join(bad))
+    if not wide:
+        lines.append("--wide adds the numba spread, us/blk, the Python twin and C ns/fr.")
     return lines
 
 

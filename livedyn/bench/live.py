@@ -71,9 +71,10 @@ class _Load:
 
 
 def _processor(algorithm, fs, channels, key_channels, settings):
-    import livedyn
+    from livedyn.processor import Processor
+    from livedyn import loader
 
-    p = livedyn.Processor(algorithm, fs, channels, key_channels=key_channels)
+    p = Processor(loader.get(algorithm), fs, channels, key_channels=key_channels)
     for k, v in settings.items():
         p.set(k, v)
     return p
@@ -119,9 +120,9 @@ def run_stream(seconds=10.0, algorithm="compressor", instances=1, samplerate=480
     settings = DEFAULT_SETTINGS.get(algorithm, {}) if settings is None else settings
     server, device = _start_server(headless, samplerate, blocksize, realtime, device)
     try:
-        from livedyn import algorithms
+        from livedyn import loader
 
-        kch = 1 if algorithms.get(algorithm).needs_key else 0
+        kch = 1 if loader.get(algorithm).needs_key else 0
         proc = _processor(algorithm, samplerate, channels, kch, settings)
         eng = _engine(proc, samplerate, channels, kch, blocksize, device, instances=instances,
                       realtime=realtime)
@@ -198,13 +199,13 @@ def run_swap(swaps=10, algorithm="compressor", samplerate=48000, blocksize=64, c
     of the period and as their ratio, with late and flagged blocks in and out of the swap
     windows and the control side's prime and switch times. One run, one machine: a ratio is
     the figure to quote, with the load average."""
-    from livedyn import algorithms
+    from livedyn import loader
     from livedyn.engine import callback as cb
     from livedyn.engine import stream as st
 
     if int(swaps) < 1:
         raise ValueError(f"swaps {swaps!r}: expected a whole number of at least 1")
-    alg = algorithms.get(algorithm)
+    alg = loader.get(algorithm)
     load0 = os.getloadavg()
     server, device = _start_server(headless, samplerate, blocksize, realtime, device)
     try:
@@ -301,7 +302,7 @@ def run_latency(repeats=5, samplerate=48000, blocksize=64, headless=True, device
     """Round-trip latency through a loopback, measured ``repeats`` times."""
     import scipy.signal as sps
 
-    import livedyn
+    from livedyn.processor import Processor
     from livedyn.engine import stream as st
     from livedyn.engine.engine import ArraySource, Engine
     from livedyn.engine.jackserver import JackServer
@@ -323,7 +324,7 @@ def run_latency(repeats=5, samplerate=48000, blocksize=64, headless=True, device
             rec = f"/tmp/livedyn-latency-{os.getpid()}-{r}"
             # the probe plays as the main input and leaves on output 1 (ratio 1: transparent);
             # what comes back on device input 1 is taken in as the key and recorded
-            proc = livedyn.Processor("compressor", samplerate, 1, key_channels=1, ratio=1,
+            proc = Processor("compressor", samplerate, 1, key_channels=1, ratio=1,
                                      key="external")
             eng = Engine(proc, blocksize, device=device, main_source=ArraySource(probe[:, None]),
                          key_inputs=[1 if headless else 2], outputs=[1], record_dir=rec,
@@ -354,7 +355,7 @@ def run_latency(repeats=5, samplerate=48000, blocksize=64, headless=True, device
     claimed = round((lat.get("input", 0.0) + lat.get("output", 0.0)) * samplerate)
     impulse = {}
     for algo, kw in (("compressor", {"lookahead": 5.0}), ("limiter", {}), ("compressor", {})):
-        p = livedyn.Processor(algo, samplerate, 1, **kw)
+        p = Processor(algo, samplerate, 1, **kw)
         x = np.zeros((4096, 1), np.float32)
         x[100] = 1e-3
         y = p.process(x)

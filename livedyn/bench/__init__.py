@@ -1,4 +1,4 @@
-"""livedyn's measurement harness: kernel cost (``python -m bench kernels``).
+"""livedyn's measurement harness: kernel cost (``python -m livedyn.bench kernels``).
 
 Figures are measured, reported as ratios within one run on one machine, and never asserted as
 bounds in unit tests.

@@ -1,6 +1,6 @@
 """A user algorithm file's cost beside the built-in compressor (``bench kernels --algorithm``).
 
-Both run the same signal (seeded noise bursts, see :func:`bench.kernels.noise_bursts`) through
+Both run the same signal (seeded noise bursts, see :func:`livedyn.bench.kernels.noise_bursts`) through
 the same numba block driver, from fresh state, in interleaved rounds so that machine noise hits
 both alike; each figure is the median over the rounds of ns per frame.
 """
@@ -14,7 +14,7 @@ from .kernels import drive, machine_info, noise_bursts
 
 
 def _setup(alg, samplerate, channels, frames):
-    from livedyn import Processor
+    from livedyn.processor import Processor
 
     proc = Processor(alg, samplerate, channels)
     x = noise_bursts(7, frames, channels, samplerate)
@@ -25,7 +25,7 @@ def run_user(path, blocksizes=(64, 1024), channels=2, samplerate=48000, seconds=
              baseline="compressor", quick=False):
     """Rows of {algorithm, blocksize, ns_per_frame, ns_min, ns_max, share_of_real_time,
     over_baseline}; the user file first, then the baseline, per block size."""
-    from livedyn.algorithms import get
+    from livedyn.loader import get
 
     if quick:
         seconds, rounds = 0.5, 3
