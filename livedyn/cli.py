@@ -963,7 +963,7 @@ def build_parser():
                                     "itself (or your port) with the vectors.")
     _add_setup(pk)
     pk.add_argument("--out", required=True, metavar="DIR",
-                    help="folder to write (new, or empty)")
+                    help="folder to write (new, or empty); required")
     pk.add_argument("--samplerate", type=float, default=48000.0,
                     help="Hz (default 48000)")
     pk.add_argument("--channels", type=int, default=2, choices=range(1, 9), metavar="N",
@@ -1023,7 +1023,7 @@ def build_parser():
                          "pink[:DBFS], white[:DBFS], sweep[:F1[:F2[:SECONDS[:DBFS]]]], "
                          "bursts[:HZ[:HIGH[:LOW[:ON_MS[:OFF_MS]]]]] (never above -6 dBFS)")
     rn.add_argument("--test-key", metavar="KIND[:ARGS]",
-                    help="a built-in test signal as the key input (same kinds)")
+                    help="a built-in test signal as the key input (same kinds; default none)")
     rn.add_argument("--picked", action="store_true",
                     help="use the devices and channels chosen with livedyn pick")
     rn.add_argument("--key-demo", action="store_true",
@@ -1045,8 +1045,8 @@ def build_parser():
                          "recordings are taken before it)")
     rn.add_argument("--midi", metavar="PORT",
                     help="read MIDI control from this input port (index, name or a unique part "
-                         "of it; livedyn devices lists them)")
-    rn.add_argument("--midi-map", metavar="FILE", help="MIDI mappings to start with (TOML)")
+                         "of it; livedyn devices lists them); default none")
+    rn.add_argument("--midi-map", metavar="FILE", help="MIDI mappings to start with (TOML); default none")
     from .control.osc import DEFAULT_PORT as OSC_PORT
 
     rn.add_argument("--osc", type=int, nargs="?", const=OSC_PORT, metavar="PORT",
@@ -1149,13 +1149,14 @@ def build_parser():
                                     "swap, sound devices in use, and how late a native "
                                     "real-time thread wakes at each block size. Changes "
                                     "nothing. Exit code 1 when an item fails.")
-    rd.add_argument("--samplerate", type=float, default=48000.0)
+    rd.add_argument("--samplerate", type=float, default=48000.0, metavar="HZ",
+                    help="sample rate the block sizes are judged at, Hz (default 48000)")
     rd.add_argument("--blocksize", type=int, default=64, metavar="N",
-                    help="the block size to judge (also measured beside 16 to 1024)")
+                    help="the block size to judge, frames (default 64; also measured beside 16 to 1024)")
     rd.add_argument("--seconds", type=float, default=2.0, metavar="S",
                     help="measurement time per block size (default 2)")
     rd.add_argument("--json", metavar="FILE",
-                    help="also write the report as JSON ('-': JSON only, on stdout)")
+                    help="also write the report as JSON ('-': JSON only, on stdout); default none")
     rd.set_defaults(func=cmd_ready)
     pk = sub.add_parser("pick", help="choose devices and main/key channels with a meter each",
                         description="Choose the input and output devices and the main and key "
@@ -1165,7 +1166,8 @@ def build_parser():
                     help="pick on a JACK server of its own (dummy backend)")
     pk.add_argument("--channels", type=int, default=4, metavar="N",
                     help="headless: capture channels of the server (default 4)")
-    pk.add_argument("--samplerate", type=float, default=48000.0)
+    pk.add_argument("--samplerate", type=float, default=48000.0, metavar="HZ",
+                    help="headless: sample rate of the server, Hz (default 48000)")
     pk.set_defaults(func=cmd_pick)
 
     ps = sub.add_parser("presets", help="list the shipped presets, or show one",

@@ -21,10 +21,11 @@ LAYERS = [
     ("algorithms and Processor", ["livedyn.algorithms", "livedyn.processor"]),
     ("loader", ["livedyn.checks", "livedyn.loader"]),
     ("offline", ["livedyn.render", "livedyn.analysis", "livedyn.presets", "livedyn.meters",
-                 "livedyn.wavio", "livedyn.automation", "livedyn.demo"]),
+                 "livedyn.wavio", "livedyn.automation", "livedyn.demo", "livedyn.port"]),
     ("engine", ["livedyn.engine"]),
+    ("control", ["livedyn.control"]),
     ("console", ["livedyn.console"]),
-    ("bench", ["livedyn.bench"]),
+    ("bench and readiness", ["livedyn.bench", "livedyn.readiness"]),
     ("command line", ["livedyn.cli", "livedyn.__main__", "livedyn"]),
 ]
 

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from livedyn import cli
-from livedyn.algorithms.checks import test_programme as programme
+from livedyn.checks import test_programme as programme
 from livedyn.port.kit import KitError, write_kit
 from livedyn.render import Setup, parse_setting
 

@@ -2,7 +2,7 @@
 
 ``write_kit(folder, setup)`` runs a built-in algorithm, a preset or an algorithm file over the
 synthesised test programme of the load-time checks (silence, sine steps, noise, clicks, a
-square; main and key, :func:`livedyn.algorithms.checks.test_programme`) and any WAV files
+square; main and key, :func:`livedyn.checks.test_programme`) and any WAV files
 given, at two block sizes, and writes::
 
     folder/
@@ -170,7 +170,7 @@ def _programme(fs, channels, wavs):
     """Main (frames, channels) and key (frames, 1), float32: the checks' test programme, then
     each WAV file (at the same rate; mono spread to every channel; its first channel also
     keys), and where each part starts."""
-    from ..algorithms.checks import test_programme
+    from ..checks import test_programme
     from ..wavio import read_wav
 
     x, key = test_programme(fs, channels)
@@ -214,12 +214,22 @@ def _write_f32(path, a):
     np.ascontiguousarray(a, dtype="<f4").tofile(path)
 
 
+def _livedyn_version():
+    """livedyn's version from its installed metadata (the package's own __init__ is the top
+    layer, which the port kit does not import)."""
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("livedyn")
+    except PackageNotFoundError:
+        return "unknown"
+
+
 def write_kit(folder, setup, samplerate=48000.0, channels=2, blocksizes=BLOCKSIZES, wavs=()):
     """Write the port kit of ``setup`` (a :class:`livedyn.render.Setup`) into ``folder``.
 
     Returns the manifest (a dict). Raises KitError (one line) for what cannot be kitted.
     """
-    from .. import __version__
     from ..render import algorithm_of, build_processor
     from ..wavio import write_wav
 
@@ -312,7 +322,7 @@ def write_kit(folder, setup, samplerate=48000.0, channels=2, blocksizes=BLOCKSIZ
         "layout": "raw little-endian float32, frames x width interleaved; every trace "
                   "sample-aligned with main.f32 (output.f32 is the raw stream, delayed by "
                   "latency_samples)",
-        "versions": {"livedyn": __version__, "numba": numba.__version__,
+        "versions": {"livedyn": _livedyn_version(), "numba": numba.__version__,
                      "numpy": np.__version__},
     }
     (folder / "manifest.json").write_text(json.dumps(manifest, indent=2) + "\n",
