@@ -212,7 +212,10 @@ class Engine:
         self.key_map = np.array((key if key_source is None else [-1] * self.kch) or [-1],
                                 np.int64)
         self.out_map = omap
+        # the control side's values (staged privately), and the array the callback copies from,
+        # written only inside the sequence lock's odd window (publish_params)
         self.pend = processor.p.copy()
+        self.shared = processor.p.copy()
         self.ptmp = processor.p.copy()
         self.safe = np.zeros(cb.SAFE_SIZE, np.float64)
         self.safe[cb.F_GAIN] = 0.0
@@ -257,7 +260,7 @@ class Engine:
         ud[cb.U_MAIN_RING] = self.main_ring[0].ctypes.data if self.main_ring else 0
         ud[cb.U_KEY_RING] = self.key_ring[0].ctypes.data if self.key_ring else 0
         ud[cb.U_TAP_RING] = self.tap_ring[0].ctypes.data
-        ud[cb.U_PPEND], ud[cb.U_PTMP] = self.pend.ctypes.data, self.ptmp.ctypes.data
+        ud[cb.U_PPEND], ud[cb.U_PTMP] = self.shared.ctypes.data, self.ptmp.ctypes.data
         ud[cb.U_KTABLE], ud[cb.U_NKSLOT] = self.table.ctypes.data, self.table.shape[0]
         ud[cb.U_KSLOT] = 0
         ud[cb.U_MONITOR] = {"out": 0, "key": 1, "delta": 2}[monitor]
@@ -529,19 +532,29 @@ class Engine:
     # ---- control surface ----------------------------------------------------------------------
     def set(self, name, value):
         """Set a parameter; it reaches the callback at its next block. Returns the sequence."""
+        return self.set_many({name: value})
+
+    def set_many(self, values):
+        """Set several parameters at once (a whole preset, say): the callback takes all of them
+        at the same block, or none. Nothing changes when one value is refused. Returns the
+        sequence number of the publication."""
         with self._lock:
-            prm = self.proc.schema[name]
-            v = prm.parse(value)
             trial = self.pend.copy()
-            trial[prm.slot] = v
+            parsed = []
+            for name, value in dict(values).items():
+                prm = self.proc.schema[name]
+                v = prm.parse(value)
+                if prm.name in ("key_lpf", "key_bpf") and v >= self.fs / 2:
+                    raise ParamError(f"{prm.name} = {v:g} Hz: must be below half the sample "
+                                     f"rate ({self.fs / 2:g} Hz)")
+                trial[prm.slot] = v
+                parsed.append((prm, v))
             self.proc._check_combination(trial)
-            if prm.name in ("key_lpf", "key_bpf") and v >= self.fs / 2:
-                raise ParamError(f"{prm.name} = {v:g} Hz: must be below half the sample rate "
-                                 f"({self.fs / 2:g} Hz)")
-            self.pend[prm.slot] = v
+            self.pend[:] = trial  # the private stage; the callback never reads it
             seq = int(cb.publish_params(self.ud, self.pend))
-            self._changes.append((seq, prm.name, v))
-            if prm.name in ("lookahead", "true_peak"):
+            for prm, v in parsed:
+                self._changes.append((seq, prm.name, v))
+            if any(prm.name in ("lookahead", "true_peak") for prm, _ in parsed):
                 self.ud[cb.U_LATENCY] = self.proc.latency_for(self.pend)  # reads pend only
             return seq
 
@@ -572,13 +585,9 @@ class Engine:
         elif pr.algorithm != self.proc.algorithm.name:
             raise ParamError(f"{name_or_path}: a {pr.algorithm} preset, but this engine runs "
                              f"the {self.proc.algorithm.name}")
-        trial = self.pend.copy()
         for n, v in pr.values.items():
-            trial[self.proc.schema[n].slot] = self.proc.schema[n].check(v)
-        self.proc._check_combination(trial)
-        for n, v in pr.values.items():
-            if self.pend[self.proc.schema[n].slot] != v:
-                self.set(n, v)
+            self.proc.schema[n].check(v)
+        self.set_many(pr.values)  # one publication: the callback never hears half a preset
         return pr
 
     # ---- live swap ----------------------------------------------------------------------------

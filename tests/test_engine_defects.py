@@ -1,0 +1,124 @@
+"""Defects of the live engine, each pinned by a test that failed before its fix.
+
+* Parameter publication is a sequence lock (DEVELOPERS.md, "The live engine"): the control
+  side stages a whole parameter array privately and copies it into the array the callback
+  reads only while the sequence number is odd, so a block sees one whole publication or the
+  previous one, never a mix.
+* A live swap that gives up (the stream stalled) is cancelled atomically: either the callback
+  had switched (and the engine then describes the new version) or it never will.
+* The native stream owns every array its callback touches; every way of stopping stops and
+  closes the stream before any of them is freed.
+* A callback with more frames than the engine's maximum is processed in pieces: counted, with
+  continuous frame counters and recordings.
+* The callback's C types and clock ids are per platform; an unsupported platform is refused
+  in one line.
+"""
+from __future__ import annotations
+
+import gc
+import os
+import subprocess
+import sys
+import threading
+import time
+import weakref
+from pathlib import Path
+
+import numpy as np
+import pytest
+import soundfile as sf
+
+import livedyn
+from livedyn import presets
+from livedyn.engine import callback as cb
+from livedyn.engine.engine import ArraySource, Engine
+from livedyn.params import NPARAM
+from tests.conftest import jack_registry, jackd_pids, make_sure_gone
+from tests.test_engine import PR_CAP, PR_KERNEL, PR_LOG, PR_N, PROBE_SIZE, _job_probe
+
+FS = 48000
+BS = 64
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def _wait(cond, timeout=10.0, step=0.005):
+    t_end = time.monotonic() + timeout
+    while time.monotonic() < t_end:
+        if cond():
+            return True
+        time.sleep(step)
+    return cond()
+
+
+def _noise(seconds, ch=2, seed=5):
+    return (0.2 * np.random.default_rng(seed).standard_normal((int(FS * seconds), ch))
+            ).astype(np.float32)
+
+
+# ---------------------------------------------------------------------------------------------
+# the sequence lock: whole presets, every slot changed, at 1 kHz
+
+PRESET_A = {"threshold": -30.0, "ratio": 4.0, "knee": 6.0, "attack": 5.0, "release": 100.0,
+            "hold": 0.0, "makeup": 0.0, "automakeup": 0.0, "detector": 0.0, "rms_time": 10.0,
+            "ballistics": 0.0, "domain": 0.0, "topology": 0.0, "lookahead": 0.0, "mix": 100.0,
+            "ceiling": 0.0, "key": 0.0, "key_hpf": 100.0, "key_lpf": 8000.0,
+            "key_bpf": 1000.0, "key_q": 1.0, "link": 0.0}
+PRESET_B = {"threshold": -10.0, "ratio": 2.0, "knee": 0.0, "attack": 20.0, "release": 300.0,
+            "hold": 50.0, "makeup": 3.0, "automakeup": 1.0, "detector": 1.0, "rms_time": 30.0,
+            "ballistics": 1.0, "domain": 1.0, "topology": 1.0, "lookahead": 2.0, "mix": 50.0,
+            "ceiling": -3.0, "key": 0.0, "key_hpf": 200.0, "key_lpf": 4000.0,
+            "key_bpf": 2000.0, "key_q": 2.0, "link": 1.0}
+
+
+def test_whole_presets_published_at_1khz_are_never_read_mixed(jack_server, tmp_path):
+    proc = livedyn.Processor("compressor", FS, 2, key_channels=1)
+    schema = proc.schema
+    assert set(PRESET_A) == set(schema.names()) == set(PRESET_B)
+    # every slot changes but the key input, which must stay main for the feedback topology
+    assert [n for n in PRESET_A if PRESET_A[n] == PRESET_B[n]] == ["key"]
+    files = []
+    for name, vals in (("a", PRESET_A), ("b", PRESET_B)):
+        files.append(presets.save(presets.Preset("compressor", dict(vals)),
+                                  tmp_path / f"{name}.toml"))
+    eng = Engine(proc, BS, main_source=ArraySource(_noise(1.0), loop=True),
+                 key_source=ArraySource(_noise(1.0, 1, seed=6), loop=True))
+    cap = 8192
+    log = np.full((cap, NPARAM), np.nan)
+    probe = np.zeros(PROBE_SIZE, np.int64)
+    probe[:cb.JOB_SIZE] = eng.job
+    probe[PR_KERNEL], probe[PR_LOG], probe[PR_CAP] = eng.table[0, 0], log.ctypes.data, cap
+    eng.table[1] = (_job_probe.address, probe.ctypes.data)
+    eng.ud[cb.U_KSLOT] = 1  # every block runs the kernel through the probe
+    slots = np.array([schema[n].slot for n in PRESET_A])
+    whole = {}
+    for vals in (PRESET_A, PRESET_B):
+        whole[tuple(vals[n] for n in PRESET_A)] = vals
+    initial = tuple(float(proc.p[s]) for s in slots)
+    loads = []
+
+    def writer():
+        t_next = time.monotonic()
+        for i in range(1500):
+            eng.load_preset(files[i % 2])
+            loads.append(i)
+            t_next += 0.001
+            time.sleep(max(0.0, t_next - time.monotonic()))
+
+    eng.start()
+    try:
+        time.sleep(0.1)
+        th = threading.Thread(target=writer)
+        th.start()
+        th.join(60)
+        time.sleep(0.05)
+    finally:
+        eng.stop()
+    n = int(probe[PR_N])
+    rows = [tuple(r) for r in log[:n, slots]]
+    mixed = [r for r in rows if r not in whole and r != initial]
+    kinds = {whole[r] is PRESET_A for r in rows if r in whole}
+    print(f"{len(loads)} presets loaded, {n} blocks probed, {len(mixed)} mixed, torn reads "
+          f"retried {int(eng.stats[cb.S_PARAM_TORN])}")
+    assert len(loads) == 1500 and n > 500
+    assert kinds == {True, False}  # both presets were heard
+    assert mixed == [], f"{len(mixed)} of {n} blocks read a mix of two presets"
