@@ -122,3 +122,47 @@ def test_whole_presets_published_at_1khz_are_never_read_mixed(jack_server, tmp_p
     assert len(loads) == 1500 and n > 500
     assert kinds == {True, False}  # both presets were heard
     assert mixed == [], f"{len(mixed)} of {n} blocks read a mix of two presets"
+
+
+# ---------------------------------------------------------------------------------------------
+# a swap that gives up is cancelled, atomically
+
+def test_a_swap_that_gives_up_is_cancelled_and_never_finishes_later(jack_server):
+    from livedyn.engine.engine import EngineError
+
+    proc = livedyn.Processor("compressor", FS, 2, threshold=-30)
+    eng = Engine(proc, BS, main_source=ArraySource(_noise(2.0), loop=True))
+    eng.start()
+    try:
+        assert _wait(lambda: eng.stats[cb.S_BLOCKS] > 200)
+        result = {}
+
+        def swapper():
+            try:  # a long crossfade: the swap is still running when the callback stalls
+                result["info"] = eng.swap("compressor", xfade_ms=1500, stall_seconds=0.3)
+            except EngineError as e:
+                result["error"] = str(e)
+
+        th = threading.Thread(target=swapper)
+        th.start()
+        assert _wait(lambda: eng.stats[cb.S_SWAP_BLOCKS] > 5)
+        eng.set_canary(1, 700_000_000)  # every block now takes 0.7 s: the stream stalls
+        th.join(10)
+        eng.set_canary(0, 0)
+        assert "error" in result and "stopped" in result["error"], result
+        blocks = int(eng.stats[cb.S_BLOCKS])
+        # blocks resume; a pending request would now run its crossfade to the end (1.5 s)
+        assert _wait(lambda: eng.stats[cb.S_BLOCKS] > blocks + 1.6 * FS / BS, timeout=15)
+        assert int(eng.stats[cb.S_SWAPS]) == 0 and int(eng.ud[cb.U_KSLOT]) == 0
+        assert eng.proc is proc
+        # the engine and the callback agree: a parameter reaches the processor that runs
+        seq = eng.set("threshold", -12.0)
+        assert eng.wait_applied(seq, timeout=2.0) is not None
+        assert proc.p[proc.schema["threshold"].slot] == -12.0
+        # and the next swap goes through
+        info = eng.swap("compressor", xfade_ms=5)
+        assert int(eng.stats[cb.S_SWAPS]) == 1 and eng.proc is not proc
+        assert info["carried"] and eng.get("threshold") == -12.0
+    finally:
+        eng.set_canary(0, 0)
+        eng.stop()

@@ -22,7 +22,7 @@ from ..dsp.dynamics import dynamics_block as _DYN
 from ..dsp.layout import NTRACE, S_GR_MAX, T_KEY
 from ..dsp.limiter import limiter_block as _LIM
 from .intrinsics import (
-    call_job, fence_acquire, fence_release, int_to_voidptr, load_acquire, load_relaxed,
+    call_job, compare_exchange, fence_acquire, fence_release, int_to_voidptr, load_acquire, load_relaxed,
     monotonic_ns, store_relaxed, store_release, voidptr_to_int,
 )
 
@@ -55,8 +55,11 @@ U_ELRING, U_RINGLEN = 35, 36  # int64 (ringlen, 3): elapsed ns, interval ns, fla
 U_SEQLOG, U_SEQLOG_LEN = 37, 38  # int64 (len, 2): (parameter sequence, frame) when applied
 U_STOPPING = 39
 U_EXTRA, U_NEXTRA = 40, 41  # int64 (n, 2) (fn, job) of extra instances (bench), run after
-# live swap: the control side fills the incoming slot, then bumps U_SWAP_REQ (release); the
-# callback runs both versions (warm-up, then crossfade) and echoes U_SWAP_DONE = U_SWAP_REQ
+# live swap: the control side fills the incoming slot, then stores a new request number in
+# U_SWAP_REQ (release); the callback runs both versions (warm-up, then crossfade) while it is
+# not 0, and completes by a compare-and-swap of U_SWAP_REQ from that number to 0, then echoes
+# U_SWAP_DONE = the number. The control side cancels with a compare-and-swap to 0 of its own:
+# exactly one of the two succeeds, so a cancelled swap never completes later.
 U_SWAP_REQ, U_SWAP_DONE, U_SWAP_SLOT = 42, 43, 44
 U_SWAP_WARM, U_SWAP_XF, U_SWAP_POS, U_SWAP_LAT = 45, 46, 47, 48
 U_Y2 = 49  # float32 (maxf, ch) scratch output of the incoming version
@@ -186,6 +189,13 @@ def publish_params(ud, values):
 def publish_swap(ud, req):
     """Control side: the incoming slot is filled; ask the callback to switch to it."""
     store_release(ud, U_SWAP_REQ, req)
+
+
+@nb.njit(**JIT)
+def cancel_swap(ud, req):
+    """Control side: withdraw request ``req``. True when it was withdrawn (the callback will
+    never complete it); False when the callback had already completed it."""
+    return compare_exchange(ud, U_SWAP_REQ, req, 0) == req
 
 
 @nb.njit(**JIT)
@@ -385,7 +395,7 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
     if lat >= dl:  # never read outside the dry line (the engine refuses such latencies)
         lat = dl - 1
     req = load_acquire(ud, U_SWAP_REQ)
-    swapping = req != ud[U_SWAP_DONE]
+    swapping = req != 0
     if swapping:
         ud[U_SWAP_ACTIVE] = 1
         nslot = ud[U_SWAP_SLOT]
@@ -422,7 +432,8 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
                     y[i, c] = y2[i, c]
         ud[U_SWAP_WARM] = warm
         ud[U_SWAP_POS] = pos
-        if warm == 0 and pos >= xfl:  # done: the incoming version is the current one
+        if warm == 0 and pos >= xfl and compare_exchange(ud, U_SWAP_REQ, req, 0) == req:
+            # done (and not withdrawn meanwhile): the incoming version is the current one
             njob[J_Y] = ud[U_Y]
             ud[U_LATENCY] = ud[U_SWAP_LAT]
             ud[U_GUARD_STATE] = GUARD_OK

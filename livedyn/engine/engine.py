@@ -238,6 +238,8 @@ class Engine:
         self.jobs = [self.ud[cb.U_JOB:cb.U_JOB + cb.JOB_SIZE], np.zeros(cb.JOB_SIZE, np.int64)]
         self._slot_owner = [processor, None]  # keeps each slot's processor (and code) alive
         self._retired = None
+        self._swap_number = 0  # request numbers of live swaps (0: none pending)
+        self._cancelled_at = None  # the block count when a swap was last cancelled
         self.swap_log = []  # one dict per completed swap
         rf = int(RING_SECONDS * self.fs)
         self.main_ring = _ring(rf, self.ch) if main_source is not None else None
@@ -610,8 +612,13 @@ class Engine:
         with self._lock:
             if self.stream is None or self.error is not None:
                 raise EngineError("swap: the stream is not running")
-            if int(self.ud[cb.U_SWAP_REQ]) != int(self.ud[cb.U_SWAP_DONE]):
+            if int(self.ud[cb.U_SWAP_REQ]) != 0:
                 raise EngineError("swap: the previous swap has not finished")
+            if self._cancelled_at is not None and \
+                    int(self.stats[cb.S_BLOCKS]) < self._cancelled_at + 2:
+                # a block that began before the cancellation may still run the incoming slot
+                raise EngineError("swap: the stream has not run since the last swap was "
+                                  "cancelled; try again when it plays")
             t0 = time.monotonic()
             old = self.proc
             new = Processor(alg, self.fs, self.ch, self.kch)
@@ -642,21 +649,33 @@ class Engine:
             self.ud[cb.U_SWAP_POS] = 0
             self.ud[cb.U_SWAP_LAT] = lat
             blocks0 = int(self.stats[cb.S_SWAP_BLOCKS])
-            req = int(self.ud[cb.U_SWAP_REQ]) + 1
+            self._swap_number += 1
+            req = self._swap_number
             cb.publish_swap(self.ud, req)
-            # Once asked, the callback finishes the swap whatever happens here, so this waits for
-            # its echo for as long as the stream runs: giving up earlier would leave the engine
-            # and the callback running different versions.
+            # The callback completes the swap with a compare-and-swap of U_SWAP_REQ to 0; a
+            # stalled stream makes this side withdraw the request with its own. One of the two
+            # wins, so the engine and the callback never describe different versions.
             frames, t_frames = int(self.stats[cb.S_FRAMES]), time.monotonic()
+            t_won = None  # when the callback was seen to have won the race to complete
             while int(self.ud[cb.U_SWAP_DONE]) != req:
                 now = time.monotonic()
                 f = int(self.stats[cb.S_FRAMES])
                 if f != frames:
                     frames, t_frames = f, now
+                elif t_won is not None:
+                    if now - t_won > 1.0:  # completed, and the echo a few stores away
+                        break
                 elif now - t_frames > stall_seconds or not self.alive():
-                    self._retired = (old, new)  # no callback runs: keep both, change nothing
-                    raise EngineError(f"swap: the stream stopped (no block for "
-                                      f"{now - t_frames:.1f} s) before the switch")
+                    if cb.cancel_swap(self.ud, req):
+                        # withdrawn: the callback never completes it. A block running now may
+                        # still read the incoming slot, so both processors stay alive
+                        self._retired = (old, new)
+                        self._slot_owner[nxt] = new
+                        self._cancelled_at = int(self.stats[cb.S_BLOCKS])
+                        raise EngineError(f"swap: the stream stopped (no block for "
+                                          f"{now - t_frames:.1f} s) before the switch; the "
+                                          "swap is cancelled and the running version stays")
+                    t_won = now
                 time.sleep(0.001)
             # the callback now runs the new version only: the old one may go after this
             self.pend[:] = new.p

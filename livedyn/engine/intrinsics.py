@@ -9,6 +9,8 @@ Everything here compiles to a few LLVM instructions; none takes the interpreter 
 - fence_acquire / fence_release / fence_seq_cst : LLVM `fence`
 - load_acquire(a, i) / load_relaxed(a, i) / store_release(a, i, v) / store_relaxed(a, i, v):
                                     atomic load/store of an int64 array element
+- compare_exchange(a, i, expected, new) : atomic compare-and-swap of an int64 array element
+                                    (acq_rel); returns the value found
 - call_job(addr, job)             : call the function at integer address `addr` with signature
                                     void(void*) — used to switch kernels at a block boundary
 """
@@ -134,6 +136,22 @@ load_acquire = _atomic_load("acquire")
 load_relaxed = _atomic_load("monotonic")  # LLVM's name for C++ relaxed
 store_release = _atomic_store("release")
 store_relaxed = _atomic_store("monotonic")
+
+
+@intrinsic
+def compare_exchange(typingctx, a, i, expected, new):
+    """Atomically: if ``a[i] == expected`` then ``a[i] = new``; returns the old ``a[i]``
+    (sequentially consistent on success, acquire on failure)."""
+    if not (isinstance(a, types.Array) and a.dtype == types.int64 and a.ndim == 1):
+        return None
+    sig = types.int64(a, types.intp, types.int64, types.int64)
+
+    def codegen(context, builder, signature, args):
+        ptr = _elem_ptr(context, builder, signature.args[0], args[0], args[1])
+        res = builder.cmpxchg(ptr, args[2], args[3], "seq_cst", "acquire")
+        return builder.extract_value(res, 0)
+
+    return sig, codegen
 
 
 @intrinsic
