@@ -166,3 +166,94 @@ def test_a_swap_that_gives_up_is_cancelled_and_never_finishes_later(jack_server)
     finally:
         eng.set_canary(0, 0)
         eng.stop()
+
+
+# ---------------------------------------------------------------------------------------------
+# the stream owns its arrays; every stop path stops and closes it first
+
+def test_stop_with_an_error_set_still_stops_and_closes_the_stream(jack_server):
+    proc = livedyn.Processor("compressor", FS, 2)
+    eng = Engine(proc, BS, main_source=ArraySource(_noise(1.0), loop=True))
+    eng.start()
+    assert _wait(lambda: eng.stats[cb.S_BLOCKS] > 100)
+    eng.error = "a failure reported by whoever ran the engine"  # as the command line does
+    stream = eng.stream
+    eng.stop()
+    blocks = int(eng.stats[cb.S_BLOCKS])
+    time.sleep(0.1)
+    assert int(eng.stats[cb.S_BLOCKS]) == blocks  # no callback runs any more
+    assert stream.state == "closed" and stream.ptr is None and stream.keep is None
+    assert not any(t.is_alive() for t in eng._threads)
+
+
+def test_an_engine_dropped_without_stop_stops_its_stream_and_closes_its_recordings(
+        jack_server, tmp_path):
+    proc = livedyn.Processor("compressor", FS, 2)
+    eng = Engine(proc, BS, main_source=ArraySource(_noise(1.0), loop=True),
+                 record_dir=tmp_path / "rec")
+    eng.start()
+    assert _wait(lambda: eng.stats[cb.S_FRAMES] > FS // 2)
+    stream, stats, threads = eng.stream, eng.stats, list(eng._threads)
+    gone = weakref.ref(eng)
+    del eng
+    assert _wait(lambda: (gc.collect(), gone() is None)[1], timeout=5.0)
+    assert stream.state == "closed" and stream.keep is None
+    frames = int(stats[cb.S_FRAMES])
+    time.sleep(0.1)
+    assert int(stats[cb.S_FRAMES]) == frames
+    assert _wait(lambda: not any(t.is_alive() for t in threads))
+    for name in ("main", "out"):
+        data, fs = sf.read(tmp_path / "rec" / f"{name}.wav")
+        assert fs == FS and len(data) > FS // 4  # complete files, closed
+
+
+STOP_AFTER_KILL = r'''
+import os, signal, sys, time
+import numpy as np
+from livedyn.engine import stream as st
+from livedyn.engine.jackserver import JackServer
+import livedyn
+from livedyn.engine.engine import ArraySource, Engine
+srv = JackServer(48000, 64, name=sys.argv[1]).start()
+st.reinitialise()
+proc = livedyn.Processor("compressor", 48000, 2)
+x = (0.2 * np.random.default_rng(1).standard_normal((48000, 2))).astype(np.float32)
+eng = Engine(proc, 64, device="system", main_source=ArraySource(x, loop=True),
+             record_dir=sys.argv[2])
+eng.start()
+while eng.stats[1] < 24000:
+    time.sleep(0.01)
+os.killpg(srv.proc.pid, signal.SIGKILL)
+srv.proc.wait()
+while eng.watch():
+    time.sleep(0.02)
+eng.stop()
+print("state", eng.stream.state, len(st.abandoned()), st.abandoned()[0].keep is eng._mem,
+      int(eng.stats[1]), flush=True)
+os._exit(0)  # PortAudio cannot be terminated once its server is gone
+'''
+
+
+def test_stop_after_the_server_was_killed_keeps_the_stream_and_closes_the_take(tmp_path):
+    from livedyn.engine.jackserver import JackServer
+
+    name = f"livedyn-test-kill-{os.getpid()}"
+    script = tmp_path / "kill.py"
+    script.write_text(STOP_AFTER_KILL)
+    rec = tmp_path / "rec"
+    try:
+        r = subprocess.run([sys.executable, str(script), name, str(rec)], capture_output=True,
+                           text=True, timeout=60, cwd=ROOT)
+    finally:
+        srv = JackServer(name=name)
+        srv.reclaim()
+        make_sure_gone(srv)
+    assert r.returncode == 0, r.stderr[-2000:]
+    line = [t for t in r.stdout.splitlines() if t.startswith("state")][0].split()
+    assert line[1:4] == ["abandoned", "1", "True"], line  # kept, with its memory
+    frames = int(line[4])
+    for f in ("main", "out"):
+        data, fs = sf.read(rec / f"{f}.wav")
+        assert len(data) == frames  # every frame the callback produced is in the take
+    assert (rec / "automation.txt").exists()
+    assert name not in [n for _, n in jack_registry()] and not jackd_pids(name)

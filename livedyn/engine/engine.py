@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 import threading
 import time
+import weakref
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -38,6 +39,45 @@ def _job_function(alg):
     if alg.kind == "user":
         return alg.user_job
     return cb.job_limiter if alg.kind == "limiter" else cb.job_dynamics
+
+
+class _Memory:
+    """Everything the callback may touch (arrays, the processors of both kernel slots and their
+    compiled code): owned by the stream while it is open, so nothing is freed under it."""
+
+    def __init__(self):
+        self.arrays = []
+        self.slots = None  # the list of each kernel slot's processor (mutated in place)
+        self.retired = None  # processors a swap let go of, kept until the next swap
+        self.extra = None
+
+
+class _Recording:
+    """The open WAV writers of a run: written by the tap thread, closed by it when it ends."""
+
+    def __init__(self):
+        self.writers = None
+        self.lock = threading.Lock()
+
+    def close(self):
+        with self.lock:
+            writers, self.writers = self.writers, None
+        for w in (writers or {}).values():
+            w.close()
+
+
+def _abandon_engine(stream, stop_evt, rec, threads):
+    """Finaliser of an Engine dropped without stop(): stop and close its stream first, then let
+    its helper threads end (the tap thread closes the recordings)."""
+    if stream is not None:
+        stream.shutdown(timeout=1.0)
+    stop_evt.set()
+    me = threading.current_thread()
+    for t in threads:
+        if t is not me:
+            t.join(timeout=2.0)
+    if not any(t is me for t in threads):
+        rec.close()
 
 
 class EngineError(RuntimeError):
@@ -237,7 +277,6 @@ class Engine:
         # slot not in use and the callback switches to it
         self.jobs = [self.ud[cb.U_JOB:cb.U_JOB + cb.JOB_SIZE], np.zeros(cb.JOB_SIZE, np.int64)]
         self._slot_owner = [processor, None]  # keeps each slot's processor (and code) alive
-        self._retired = None
         self._swap_number = 0  # request numbers of live swaps (0: none pending)
         self._cancelled_at = None  # the block count when a swap was last cancelled
         self.swap_log = []  # one dict per completed swap
@@ -320,7 +359,14 @@ class Engine:
         self._threads = []
         self._stop_evt = threading.Event()
         self.stream = None
-        self._writers = None
+        self._rec = _Recording()
+        self._recording = False  # recordings were opened (the automation is written on stop)
+        self._finalizer = None
+        self._mem = _Memory()
+        self._mem.arrays = [a for a in vars(self).values() if isinstance(a, np.ndarray)] + \
+            [self.jobs, self.main_ring, self.key_ring, self.tap_ring]
+        self._mem.slots = self._slot_owner
+        self._mem.extra = self._extra
         self._warm_callback()
 
     @property
@@ -377,13 +423,20 @@ class Engine:
         # open (and so check rate and channels) before any recording file is created
         self.stream = NativeStream(cb.native_callback.address, self.ud.ctypes.data,
                                    self._devices[0], self._devices[1], self.n_in, self.n_out,
-                                   self.fs, self.blocksize)
+                                   self.fs, self.blocksize, keep=self._mem)
+        # an Engine dropped without stop(): its stream is stopped and closed before its arrays
+        # can go (the helper threads hold the Engine only weakly)
+        self._finalizer = weakref.finalize(self, _abandon_engine, self.stream, self._stop_evt,
+                                           self._rec, self._threads)
         if self.record_dir is not None:
             self._open_writers()
         self.t_start = time.monotonic()
         self.stream.start()
-        for target in (self._feeder_loop, self._tap_loop):
-            t = threading.Thread(target=target, daemon=True)
+        me = weakref.ref(self)
+        for target, args in ((_feeder_loop, (me, self._stop_evt)),
+                             (_tap_loop, (me, self._stop_evt, self._rec))):
+            t = threading.Thread(target=target, args=args, daemon=True,
+                                 name=f"livedyn-{target.__name__.strip('_')}")
             t.start()
             self._threads.append(t)
         return self
@@ -404,15 +457,11 @@ class Engine:
             if not until_full and moved >= chunk * 4:
                 return moved
 
-    def _feeder_loop(self):
-        ended = {id(self.main_source): False, id(self.key_source): False}
-        while not self._stop_evt.is_set():
-            for src, ring in ((self.main_source, self.main_ring),
-                              (self.key_source, self.key_ring)):
-                if src is not None and not ended[id(src)]:
-                    if self._feed(src, ring) == -1:
-                        ended[id(src)] = True
-            self._stop_evt.wait(0.01)
+    def _feed_sources(self, ended):
+        for src, ring in ((self.main_source, self.main_ring), (self.key_source, self.key_ring)):
+            if src is not None and not ended.get(id(src)):
+                if self._feed(src, ring) == -1:
+                    ended[id(src)] = True
 
     @property
     def source_finished(self):
@@ -420,16 +469,6 @@ class Engine:
         if self.main_source is None:
             return False
         return self.main_source.finished and cb.ring_fill(self.main_ring[0]) == 0
-
-    def _tap_loop(self):
-        hdr, _ = self.tap_ring
-        chunk = np.zeros((int(0.1 * self.fs) + self.maxf, self.tap_width), np.float32)
-        while not self._stop_evt.is_set():
-            self._drain_tap(hdr, chunk)
-            self._resolve_changes()
-            self._stop_evt.wait(0.02)
-        self._drain_tap(hdr, chunk)
-        self._resolve_changes()
 
     def _drain_tap(self, hdr, chunk):
         while True:
@@ -446,11 +485,12 @@ class Engine:
                 self.meters_out.process(yout)
                 self._snapshot_meters = {"in": self.meters_in.snapshot(),
                                          "out": self.meters_out.snapshot()}
-            if self._writers is not None:
-                self._writers["main"].write(xin)
+            writers = self._rec.writers
+            if writers is not None:
+                writers["main"].write(xin)
                 if self.kch:
-                    self._writers["key"].write(key)
-                self._writers["out"].write(yout)
+                    writers["key"].write(key)
+                writers["out"].write(yout)
 
     def _remember(self, blk):
         buf = self._recent
@@ -479,38 +519,47 @@ class Engine:
 
         self.record_dir.mkdir(parents=True, exist_ok=True)
         fs = int(self.fs)
-        self._writers = {"main": WavWriter(self.record_dir / "main.wav", fs, self.ch),
-                         "out": WavWriter(self.record_dir / "out.wav", fs, self.ch)}
+        writers = {"main": WavWriter(self.record_dir / "main.wav", fs, self.ch),
+                   "out": WavWriter(self.record_dir / "out.wav", fs, self.ch)}
         if self.kch:
-            self._writers["key"] = WavWriter(self.record_dir / "key.wav", fs, self.kch)
+            writers["key"] = WavWriter(self.record_dir / "key.wav", fs, self.kch)
+        self._rec.writers = writers
+        self._recording = True
 
     def stop(self, timeout=2.0):
-        """Fade out, stop the stream and the threads, close recordings. Idempotent."""
+        """Fade out, stop and close the stream, end the helper threads, close the recordings
+        and write the automation. Idempotent.
+
+        The stream is always stopped and closed before anything it touches is let go; after a
+        dead server or device, whose stop never returns, the stream is abandoned with its
+        memory (see :meth:`NativeStream.shutdown`) and the rest proceeds."""
         with self._lock:
             if self._closed:
                 return
             self._closed = True
-        if self.stream is not None and self.error is None:
-            self.safe[cb.F_FADE_STEP] = self._fade_out_step
-            self.safe[cb.F_TARGET] = 0.0
-            t_end = time.monotonic() + timeout
-            while self.safe[cb.F_GAIN] > 0.0 and time.monotonic() < t_end and self.alive():
-                time.sleep(0.005)
-            time.sleep(2 * self.blocksize / self.fs)
+        if self.stream is not None:
+            if self.error is None:
+                self.safe[cb.F_FADE_STEP] = self._fade_out_step
+                self.safe[cb.F_TARGET] = 0.0
+                t_end = time.monotonic() + timeout
+                while self.safe[cb.F_GAIN] > 0.0 and time.monotonic() < t_end and self.alive():
+                    time.sleep(0.005)
+                time.sleep(2 * self.blocksize / self.fs)
+            self.stream.shutdown(timeout=5.0 if self.error is None else 0.5)
+        # no block runs any more (or ever will): the tap thread drains what is left, closes
+        # the recordings and ends
         self._stop_evt.set()
         for t in self._threads:
-            t.join(timeout=timeout)
-        if self.stream is not None and self.error is None:
-            self.stream.stop()
-            self.stream.close()
+            t.join(timeout=max(timeout, 5.0))
         for src in (self.main_source, self.key_source):
             if src is not None:
                 src.close()
-        if self._writers is not None:
-            for w in self._writers.values():
-                w.close()
-            self._writers = None
+        if not any(t.is_alive() for t in self._threads):
+            self._rec.close()
+        if self._recording:
             self._write_automation()
+        if self._finalizer is not None:
+            self._finalizer.detach()
 
     def alive(self):
         """False when the stream has stopped delivering blocks (a dead server, say)."""
@@ -669,7 +718,7 @@ class Engine:
                     if cb.cancel_swap(self.ud, req):
                         # withdrawn: the callback never completes it. A block running now may
                         # still read the incoming slot, so both processors stay alive
-                        self._retired = (old, new)
+                        self._mem.retired = (old, new)
                         self._slot_owner[nxt] = new
                         self._cancelled_at = int(self.stats[cb.S_BLOCKS])
                         raise EngineError(f"swap: the stream stopped (no block for "
@@ -679,7 +728,7 @@ class Engine:
                 time.sleep(0.001)
             # the callback now runs the new version only: the old one may go after this
             self.pend[:] = new.p
-            self._retired = old
+            self._mem.retired = old
             self._slot_owner[cur] = None
             self.ud[cb.U_GUARD_ON] = 1 if alg.source is not None else 0
             self._schemas.append(new.schema)
@@ -831,6 +880,40 @@ class Engine:
             write_text_atomic(self.record_dir / "versions.txt",
                               "# FRAME ALGORITHM (file or name) CONTENT HASH\n"
                               + "\n".join(lines) + "\n")
+
+
+def _feeder_loop(engine_ref, stop_evt):
+    """Keep the file/array sources' rings full; holds the Engine only weakly."""
+    ended = {}
+    while not stop_evt.is_set():
+        eng = engine_ref()
+        if eng is None:
+            return
+        eng._feed_sources(ended)
+        del eng
+        stop_evt.wait(0.01)
+
+
+def _tap_loop(engine_ref, stop_evt, rec):
+    """Drain the tap ring into the meters and the recordings until stopped, then once more
+    (the stream is closed by then, so nothing is left behind); closes the recordings."""
+    chunk = None
+    try:
+        while True:
+            eng = engine_ref()
+            if eng is None:
+                return
+            if chunk is None:
+                chunk = np.zeros((int(0.1 * eng.fs) + eng.maxf, eng.tap_width), np.float32)
+            last = stop_evt.is_set()
+            eng._drain_tap(eng.tap_ring[0], chunk)
+            eng._resolve_changes()
+            del eng
+            if last:
+                return
+            stop_evt.wait(0.02)
+    finally:
+        rec.close()
 
 
 def realtime_threads():
