@@ -296,3 +296,73 @@ def test_100_start_stop_cycles_leave_memory_files_and_threads_flat(jack_server, 
     # 90 more cycles of about 1.5 MiB of engine arrays each: flat means far less than one
     # cycle's worth per ten cycles
     assert rss1 - rss0 < 8 * 1024
+
+
+# ---------------------------------------------------------------------------------------------
+# a callback with more frames than the engine's maximum
+
+def _call(eng, inp, frames):
+    import ctypes
+
+    f = ctypes.CFUNCTYPE(ctypes.c_int, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_ulong,
+                         ctypes.c_void_p, ctypes.c_ulong, ctypes.c_void_p)(
+        cb.native_callback.address)
+    out = np.zeros((frames, eng.n_out), np.float32)
+    assert f(inp.ctypes.data, out.ctypes.data, frames, None, 0, eng.ud.ctypes.data) == 0
+    return out
+
+
+def _tap(eng):
+    got = np.zeros((1 << 14, eng.tap_width), np.float32)
+    return got[:cb.ring_take(eng.tap_ring[0], got)].copy()
+
+
+def test_a_callback_larger_than_the_maximum_is_processed_in_pieces_and_counted(jack_server):
+    x = _noise(0.05)[:2000]
+    outs, taps, engines = [], [], []
+    for calls in ([2000], [250] * 8):  # one oversized callback, or eight that fit
+        proc = livedyn.Processor("compressor", FS, 2, threshold=-30, ratio=4)
+        eng = Engine(proc, BS, max_frames=256, fade_in_ms=0.01)
+        o, pos = [], 0
+        for n in calls:
+            inp = np.zeros((n, eng.n_in), np.float32)
+            inp[:, :2] = x[pos:pos + n]
+            o.append(_call(eng, inp, n))
+            pos += n
+        outs.append(np.concatenate(o))
+        taps.append(_tap(eng))
+        engines.append(eng)
+    big, small = engines
+    assert int(big.stats[cb.S_FRAMES]) == 2000 == int(small.stats[cb.S_FRAMES])
+    assert int(big.stats[cb.S_BLOCKS]) == 1
+    assert big.snapshot()["oversized_callbacks"] == 1
+    assert small.snapshot()["oversized_callbacks"] == 0
+    assert np.array_equal(taps[0][:, :2], x) and len(taps[0]) == 2000  # the recording is whole
+    assert np.abs(outs[0][100:]).max() > 0.05  # not silence
+    assert np.array_equal(outs[0], outs[1])  # the same as blocks that fit
+    assert np.array_equal(taps[0], taps[1])
+
+
+def test_a_blocksize_above_the_maximum_is_refused_when_the_engine_is_built(jack_server):
+    proc = livedyn.Processor("compressor", FS, 2)
+    with pytest.raises(ValueError) as e:
+        Engine(proc, 512, max_frames=256)
+    assert "blocksize 512" in str(e.value) and "256" in str(e.value)
+    assert "\n" not in str(e.value)
+
+
+# ---------------------------------------------------------------------------------------------
+# platform guards
+
+def test_clock_ids_and_the_callback_types_are_per_platform_or_refused_in_one_line():
+    from livedyn.engine.intrinsics import PlatformError, platform_clocks
+
+    # this platform's ids as Python's own time module gives them (an independent reference)
+    assert platform_clocks() == (time.CLOCK_MONOTONIC, time.CLOCK_THREAD_CPUTIME_ID)
+    assert platform_clocks("linux", 8) == (1, 3)
+    assert platform_clocks("darwin", 8) == (6, 16)
+    for plat, size in (("win32", 4), ("linux", 4), ("freebsd14", 8), ("darwin", 4)):
+        with pytest.raises(PlatformError) as e:
+            platform_clocks(plat, size)
+        msg = str(e.value)
+        assert plat in msg and f"{8 * size}-bit" in msg and "\n" not in msg

@@ -186,6 +186,10 @@ class Engine:
         self.proc = processor
         self.fs = processor.samplerate
         self.blocksize = int(blocksize)
+        self.maxf = int(max_frames)
+        if not 1 <= self.blocksize <= self.maxf:
+            raise ValueError(f"blocksize {self.blocksize}: expected 1 to {self.maxf} frames "
+                             "(the engine's max_frames)")
         self.ch = processor.channels
         self.kch = processor.key_channels
         self.main_source = main_source
@@ -241,8 +245,7 @@ class Engine:
         self._devices = (in_dev, out_dev)
 
         # ---- every array the callback touches --------------------------------------------------
-        maxf = int(max_frames)
-        self.maxf = maxf
+        maxf = self.maxf
         self.ud = np.zeros(cb.UD_SIZE, np.int64)
         self.stats = np.zeros(cb.STATS_SIZE, np.int64)
         self.x = np.zeros((maxf, self.ch), np.float32)
@@ -321,7 +324,8 @@ class Engine:
         ud[cb.U_GUARD_ON] = 1 if processor.algorithm.source is not None else 0
         ud[cb.U_GUARD_N] = GUARD_BLOCKS
         ud[cb.U_GUARD_XF] = max(1, int(round(GUARD_XFADE_MS * self.fs / 1000)))
-        ud[cb.U_BUDGET_NS] = int(round(1e9 * self.blocksize / self.fs))
+        ud[cb.U_BUDGET_NS] = int(round(1e9 * self.blocksize / self.fs))  # of CPU time
+        ud[cb.U_BLOCKSIZE] = self.blocksize
         # extra instances (same settings, own state, output discarded) to measure headroom
         self._extra = []
         self.extra_table = np.zeros((max(int(instances) - 1, 1), 2), np.int64)
@@ -822,6 +826,9 @@ class Engine:
             "underruns_main": int(s[cb.S_UNDER_MAIN]), "underruns_key": int(s[cb.S_UNDER_KEY]),
             "tap_dropped_blocks": int(s[cb.S_TAP_DROPPED]),
             "nonfinite_blocks": int(s[cb.S_NONFINITE_BLOCKS]),
+            "oversized_callbacks": int(s[cb.S_TOO_BIG]),
+            "host_period_frames": int(s[cb.S_HOST_FRAMES]) or None,
+            "callback_cpu_max": float(s[cb.S_CPU_MAX]) / period_ns,
             "param_seq": int(s[cb.S_PARAM_SEQ]), "param_frame": int(s[cb.S_PARAM_FRAME]),
             "peak_in_dbfs": [_db(v) for v in m[cb.M_IN:cb.M_IN + self.ch]],
             "peak_out_dbfs": [_db(v) for v in m[cb.M_OUT:cb.M_OUT + self.ch]],

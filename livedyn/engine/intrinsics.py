@@ -5,6 +5,8 @@ Everything here compiles to a few LLVM instructions; none takes the interpreter 
 - int_to_voidptr / voidptr_to_int : inttoptr / ptrtoint
 - monotonic_ns                    : clock_gettime(CLOCK_MONOTONIC) declared in the module
                                     (vDSO on Linux x86-64: no system call, no GIL)
+- thread_cpu_ns                   : clock_gettime(CLOCK_THREAD_CPUTIME_ID): the calling
+                                    thread's CPU time (a real system call on Linux)
 - cycles                          : llvm.readcyclecounter (rdtsc on x86-64)
 - fence_acquire / fence_release / fence_seq_cst : LLVM `fence`
 - load_acquire(a, i) / load_relaxed(a, i) / store_release(a, i, v) / store_relaxed(a, i, v):
@@ -43,24 +45,57 @@ def voidptr_to_int(typingctx, ptr):
     return sig, codegen
 
 
-CLOCK_MONOTONIC = 1  # Linux <time.h>
+class PlatformError(OSError):
+    """The live engine does not support this platform; one line for the user."""
 
 
-@intrinsic
-def monotonic_ns(typingctx):
-    sig = types.int64()
+def platform_clocks(platform=None, ulong_bytes=None):
+    """(CLOCK_MONOTONIC, CLOCK_THREAD_CPUTIME_ID) of ``platform`` (default: this one).
 
-    def codegen(context, builder, signature, args):
-        ts_t = ir.LiteralStructType([_i64, _i64])  # struct timespec on LP64
-        ts = cgutils.alloca_once(builder, ts_t)  # in the entry block: no allocation per call
-        fnty = ir.FunctionType(_i32, [_i32, ts_t.as_pointer()])
-        fn = cgutils.get_or_insert_function(builder.module, fnty, "clock_gettime")
-        builder.call(fn, [ir.Constant(_i32, CLOCK_MONOTONIC), ts])
-        sec = builder.load(cgutils.gep_inbounds(builder, ts, 0, 0))
-        nsec = builder.load(cgutils.gep_inbounds(builder, ts, 0, 1))
-        return builder.add(builder.mul(sec, ir.Constant(_i64, 1_000_000_000)), nsec)
+    The callback's signature takes PortAudio's ``unsigned long`` as 64 bits and reads
+    ``struct timespec`` as two 64-bit fields: true on LP64 Linux and macOS, false on Windows
+    (LLP64) and on 32-bit systems, which are refused with one line. Clock ids from the
+    platforms' <time.h> (Linux: 1 and 3; macOS: 6 and 16; recalled from memory)."""
+    import ctypes
+    import sys
 
-    return sig, codegen
+    platform = sys.platform if platform is None else platform
+    ulong_bytes = ctypes.sizeof(ctypes.c_ulong) if ulong_bytes is None else ulong_bytes
+    clocks = {"linux": (1, 3), "darwin": (6, 16)}
+    key = "linux" if platform.startswith("linux") else platform
+    if key not in clocks or ulong_bytes != 8:
+        raise PlatformError(f"livedyn's live engine runs on 64-bit Linux or macOS; this is "
+                            f"{platform} with a {8 * ulong_bytes}-bit unsigned long")
+    return clocks[key]
+
+
+CLOCK_MONOTONIC, CLOCK_THREAD_CPUTIME_ID = platform_clocks()
+
+
+def _clock_reader(clock_id):
+    @intrinsic
+    def read(typingctx):
+        sig = types.int64()
+
+        def codegen(context, builder, signature, args):
+            ts_t = ir.LiteralStructType([_i64, _i64])  # struct timespec on LP64
+            ts = cgutils.alloca_once(builder, ts_t)  # in the entry block: no allocation per call
+            fnty = ir.FunctionType(_i32, [_i32, ts_t.as_pointer()])
+            fn = cgutils.get_or_insert_function(builder.module, fnty, "clock_gettime")
+            builder.call(fn, [ir.Constant(_i32, clock_id), ts])
+            sec = builder.load(cgutils.gep_inbounds(builder, ts, 0, 0))
+            nsec = builder.load(cgutils.gep_inbounds(builder, ts, 0, 1))
+            return builder.add(builder.mul(sec, ir.Constant(_i64, 1_000_000_000)), nsec)
+
+        return sig, codegen
+
+    return read
+
+
+monotonic_ns = _clock_reader(CLOCK_MONOTONIC)
+# The calling thread's CPU time. On Linux this clock is not served by the vDSO: each read is a
+# real (short) system call; the callback makes two per block (see DEVELOPERS.md).
+thread_cpu_ns = _clock_reader(CLOCK_THREAD_CPUTIME_ID)
 
 
 @intrinsic
