@@ -828,7 +828,8 @@ class Engine:
             "nonfinite_blocks": int(s[cb.S_NONFINITE_BLOCKS]),
             "oversized_callbacks": int(s[cb.S_TOO_BIG]),
             "host_period_frames": int(s[cb.S_HOST_FRAMES]) or None,
-            "callback_cpu_max": float(s[cb.S_CPU_MAX]) / period_ns,
+            # the callback's own CPU time, read only while the overrun guard is on
+            "callback_cpu_max": float(s[cb.S_CPU_MAX]) / period_ns if s[cb.S_CPU_MAX] else None,
             "param_seq": int(s[cb.S_PARAM_SEQ]), "param_frame": int(s[cb.S_PARAM_FRAME]),
             "peak_in_dbfs": [_db(v) for v in m[cb.M_IN:cb.M_IN + self.ch]],
             "peak_out_dbfs": [_db(v) for v in m[cb.M_OUT:cb.M_OUT + self.ch]],
