@@ -33,7 +33,7 @@ FS = 48000
 ROOT = Path(__file__).resolve().parent.parent
 
 
-def _late_run(period, blocksize, seconds=2.5, realtime=True):
+def _late_run(period, blocksize, seconds=2.0, realtime=True):
     """Late and total blocks of a compressor on a server of host period ``period`` with
     callbacks of ``blocksize`` frames."""
     srv = JackServer(FS, period, realtime=realtime,
@@ -70,7 +70,7 @@ def test_a_clean_burst_stream_counts_about_as_few_late_blocks_as_a_matched_one()
     matched = runs[(64, 64)][0]
     noise = 3 * matched + 10  # "within noise": a few scheduling hiccups either way
     for (period, bs), (late, n, hp) in runs.items():
-        assert n > 0.8 * 2.5 * FS / bs, (period, bs, n)  # the run really streamed
+        assert n > 0.8 * 2.0 * FS / bs, (period, bs, n)  # the run really streamed
         assert hp == period, (period, bs, hp)  # the engine saw the host's period
         assert late <= noise, (period, bs, late, matched)
 

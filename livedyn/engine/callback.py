@@ -70,11 +70,12 @@ U_GUARD_ON, U_GUARD_N, U_GUARD_COUNT, U_GUARD_STATE, U_GUARD_POS = 52, 53, 54, 5
 U_GUARD_XF, U_BUDGET_NS = 57, 58
 # host cycles (timing_stage): start time and frame count of the current one, the end of the
 # previous callback, and the engine's block size
-U_CYCLE_T0, U_CYCLE_F0, U_T_END, U_BLOCKSIZE = 59, 60, 61, 62
+U_CYCLE_T0, U_CYCLE_F0, U_T_END, U_BLOCKSIZE, U_CYCLE_OVER = 59, 60, 61, 62, 63
 U_JOB = 64  # the kernel job block of slot 0 lives at ud[U_JOB:U_JOB + JOB_SIZE]
 UD_SIZE = U_JOB + JOB_SIZE
 GUARD_OK, GUARD_FADING, GUARD_BYPASSED = 0, 1, 2
 SWAP_BIT = 16  # set in a block's flags column of the elapsed-time ring when it ran two versions
+LATE_BIT = 17  # set there when the block was counted late (S_LATE)
 
 MONITOR_OUT, MONITOR_KEY, MONITOR_DELTA = 0, 1, 2
 
@@ -322,7 +323,7 @@ def timing_stage(ud, stats, t0):
     begins within a quarter of a block period of the previous one's end continues the same
     host cycle; at each new cycle the frames delivered since the last cycle start are the host
     period, and the cycle is late when it began more than 1.5 host periods after the last
-    (unless the callback before it overran: an overrun is counted by that callback itself).
+    (unless a callback of the last cycle overran: an overrun is counted by that callback).
     Returns (interval since the previous callback's start, late)."""
     blocks = stats[S_BLOCKS]
     period = stats[S_PERIOD_NS]
@@ -340,11 +341,12 @@ def timing_stage(ud, stats, t0):
             host_ns = frames * period // ud[U_BLOCKSIZE]
             stats[S_HOST_FRAMES] = frames
             late = period > 0 and 2 * (t0 - ud[U_CYCLE_T0]) > 3 * host_ns and \
-                stats[S_LAST_OVERRUN] == 0
+                ud[U_CYCLE_OVER] == 0
             if late:
                 stats[S_LATE] += 1
             ud[U_CYCLE_T0] = t0
             ud[U_CYCLE_F0] = stats[S_FRAMES]
+            ud[U_CYCLE_OVER] = 0
     stats[S_T_LAST] = t0
     return interval, late
 
@@ -394,17 +396,18 @@ def kernel_stage(ud, n, monitor, guard):
             ej = carray(int_to_voidptr(extra[e, 1]), (JOB_SIZE,), np.int64)
             ej[J_FRAMES] = n
             call_job(extra[e, 0], int_to_voidptr(extra[e, 1]))
-    return job
+    return jaddr  # an address, not the array: returning an array would take a reference
 
 
 @nb.njit(**JIT)
-def swap_stage(ud, stats, x, y, n, ch, monitor, guard, dry, dl, dpos, lat, frame0, job):
+def swap_stage(ud, stats, x, y, n, ch, monitor, guard, dry, dl, dpos, lat, frame0, jaddr):
     """A live swap: run the incoming version beside the current one (warm-up, then a linear
     crossfade into ``y``); complete it by compare-and-swap of the request to 0 (the control
-    side may have withdrawn it). Returns (whether two versions ran, the job now current)."""
+    side may have withdrawn it). Returns (whether two versions ran, the current job's
+    address)."""
     req = load_acquire(ud, U_SWAP_REQ)
     if req == 0:
-        return False, job
+        return False, jaddr
     table = carray(int_to_voidptr(ud[U_KTABLE]), (ud[U_NKSLOT], 2), np.int64)
     nslot = ud[U_SWAP_SLOT]
     njaddr = table[nslot, 1]
@@ -451,12 +454,12 @@ def swap_stage(ud, stats, x, y, n, ch, monitor, guard, dry, dl, dpos, lat, frame
         stats[S_SWAP_FRAME] = frame0 + n
         ud[U_SWAP_TAIL] = 2
         store_release(ud, U_SWAP_DONE, req)
-        return True, njob
-    return True, job
+        return True, njaddr
+    return True, jaddr
 
 
 @nb.njit(**JIT)
-def dry_stage(ud, x, y, n, ch, monitor, guard, swapping, dry, dl, dpos, lat, job, kch):
+def dry_stage(ud, x, y, n, ch, monitor, guard, swapping, dry, dl, dpos, lat, jaddr, kch):
     """The dry delay line (aligned with the latency) for bypass, delta and the guard's fade to
     bypass; then the key monitor."""
     pos = dpos
@@ -489,6 +492,7 @@ def dry_stage(ud, x, y, n, ch, monitor, guard, swapping, dry, dl, dpos, lat, job
         if gpos >= gxf:
             ud[U_GUARD_STATE] = GUARD_BYPASSED
     if monitor == MONITOR_KEY and bypass == 0 and guard != GUARD_BYPASSED:
+        job = carray(int_to_voidptr(jaddr), (JOB_SIZE,), np.int64)
         tr = carray(int_to_voidptr(job[J_TR]), (NTRACE, n, job[J_TRC]), np.float64)
         nk = kch if kch > 0 else ch
         for i in range(n):
@@ -507,7 +511,7 @@ def output_stage(ud, y, out, n, nout):
 
 
 @nb.njit(**JIT)
-def meter_stage(ud, x, k, y, n, ch, kch, job):
+def meter_stage(ud, x, k, y, n, ch, kch, jaddr):
     """Peaks of input, output and key, and the kernel's largest gain reduction."""
     m = carray(int_to_voidptr(ud[U_METER]), (METER_SIZE,), np.float64)
     for c in range(ch):
@@ -529,6 +533,7 @@ def meter_stage(ud, x, k, y, n, ch, kch, job):
             if v > a:
                 a = v
         m[M_KEY + c] = a
+    job = carray(int_to_voidptr(jaddr), (JOB_SIZE,), np.int64)
     st = carray(int_to_voidptr(job[J_ST]), (job[J_STR], job[J_STC]), np.float64)
     m[M_GR] = st[S_GR_MAX, 0]
 
@@ -571,23 +576,23 @@ def block_body(inp, has_in, out, n, ud, stats):
     input_stage(inp, has_in, n, ud, stats, x, k, ch, kch)
     monitor = load_relaxed(ud, U_MONITOR)
     guard = ud[U_GUARD_STATE]
-    job = kernel_stage(ud, n, monitor, guard)
+    jaddr = kernel_stage(ud, n, monitor, guard)
     dl = ud[U_DRY_LEN]
     dry = carray(int_to_voidptr(ud[U_DRY]), (dl, ch), np.float32)
     dpos = ud[U_DRY_POS]
     lat = ud[U_LATENCY]
     if lat >= dl:  # never read outside the dry line (the engine refuses such latencies)
         lat = dl - 1
-    swapping, job = swap_stage(ud, stats, x, y, n, ch, monitor, guard, dry, dl, dpos, lat,
-                               frame0, job)
+    swapping, jaddr = swap_stage(ud, stats, x, y, n, ch, monitor, guard, dry, dl, dpos, lat,
+                                 frame0, jaddr)
     ud[U_SWAP_ACTIVE] = 1 if swapping else 0
     if ud[U_GUARD_STATE] != guard:  # a completed swap cleared the guard
         guard = ud[U_GUARD_STATE]
-    dry_stage(ud, x, y, n, ch, monitor, guard, swapping, dry, dl, dpos, lat, job, kch)
+    dry_stage(ud, x, y, n, ch, monitor, guard, swapping, dry, dl, dpos, lat, jaddr, kch)
     safe = carray(int_to_voidptr(ud[U_SAFE]), (SAFE_SIZE,), np.float64)
     safety_stage(y, n, ch, safe, load_relaxed(ud, U_MUTE), stats)
     output_stage(ud, y, out, n, ud[U_NOUT])
-    meter_stage(ud, x, k, y, n, ch, kch, job)
+    meter_stage(ud, x, k, y, n, ch, kch, jaddr)
     tap_stage(ud, stats, x, k, y, n, ch, kch)
     store_release(stats, S_FRAMES, frame0 + n)
 
@@ -622,6 +627,8 @@ def account_stage(ud, stats, el, cpu, interval, late, status):
     if over and not late:  # a block that started late was counted already: count once
         stats[S_LATE] += 1
     stats[S_LAST_OVERRUN] = over
+    if over:
+        ud[U_CYCLE_OVER] = 1
     if status != 0:
         stats[S_FLAGGED] += 1
         stats[S_FLAGS_OR] |= status
@@ -641,7 +648,8 @@ def account_stage(ud, stats, el, cpu, interval, late, status):
     b = stats[S_BLOCKS] % rl
     rng[b, 0] = el
     rng[b, 1] = interval
-    rng[b, 2] = status | (ud[U_SWAP_ACTIVE] << SWAP_BIT)
+    rng[b, 2] = status | (ud[U_SWAP_ACTIVE] << SWAP_BIT) | \
+        ((1 if (over or late) else 0) << LATE_BIT)
     stats[S_BLOCKS] += 1
 
 
