@@ -183,6 +183,17 @@ class Engine:
                  main_source=None, key_source=None, record_dir=None, ceiling_db=-1.0,
                  fade_in_ms=500.0, fade_out_ms=50.0, mute_ms=5.0, max_frames=8192,
                  monitor="out", meters=True, instances=1):
+        self._settings(processor, blocksize, max_frames, main_source, key_source, record_dir)
+        self._route(device, input_device, output_device, main_inputs, key_inputs, outputs)
+        self._allocate(processor, ceiling_db, fade_in_ms, fade_out_ms, mute_ms)
+        self._fill_user_data(processor, monitor)
+        self._add_instances(processor, instances)
+        self._control_state(processor, meters)
+        self._warm_callback()
+
+    # ---- construction, one concern each ------------------------------------------------------
+    def _settings(self, processor, blocksize, max_frames, main_source, key_source, record_dir):
+        """What the engine runs and at which size; sources checked against the processor."""
         self.proc = processor
         self.fs = processor.samplerate
         self.blocksize = int(blocksize)
@@ -205,7 +216,9 @@ class Engine:
             raise DeviceError(f"key source has {key_source.channels} channels, expected "
                               f"{self.kch}")
 
-        # ---- devices and routing (checked before anything opens) ---------------------------
+    def _route(self, device, input_device, output_device, main_inputs, key_inputs, outputs):
+        """Devices and channel routing, checked before anything opens."""
+        main_source, key_source = self.main_source, self.key_source
         in_dev = find_device(input_device if input_device is not None else device, "input")
         out_dev = find_device(output_device if output_device is not None else device, "output")
         from .stream import list_devices
@@ -242,9 +255,14 @@ class Engine:
         for i, c in enumerate(outs):
             omap[c] = i % self.ch
         self.routing = Routing(main, key, list(omap))
+        self.out_map = omap
         self._devices = (in_dev, out_dev)
 
-        # ---- every array the callback touches --------------------------------------------------
+    def _allocate(self, processor, ceiling_db, fade_in_ms, fade_out_ms, mute_ms):
+        """Every array the callback touches, allocated once."""
+        main_source, key_source = self.main_source, self.key_source
+        main, key = self.routing.main, self.routing.key
+        omap = self.out_map
         maxf = self.maxf
         self.ud = np.zeros(cb.UD_SIZE, np.int64)
         self.stats = np.zeros(cb.STATS_SIZE, np.int64)
@@ -289,6 +307,9 @@ class Engine:
         self.tap_width = 2 * self.ch + self.kch
         self.tap_ring = _ring(int(TAP_SECONDS * self.fs), self.tap_width)
 
+    def _fill_user_data(self, processor, monitor):
+        """The user-data block: the address and size of every array, the kernel slot 0 job."""
+        maxf = self.maxf
         kernel = _job_function(processor.algorithm)
         self._kernel_cfunc = kernel
         ud = self.ud
@@ -309,7 +330,7 @@ class Engine:
         ud[cb.U_KSLOT] = 0
         ud[cb.U_MONITOR] = {"out": 0, "key": 1, "delta": 2}[monitor]
         ud[cb.U_SAFE] = self.safe.ctypes.data
-        ud[cb.U_DRY], ud[cb.U_DRY_LEN] = self.dry.ctypes.data, dry_len
+        ud[cb.U_DRY], ud[cb.U_DRY_LEN] = self.dry.ctypes.data, self.dry.shape[0]
         ud[cb.U_LATENCY] = processor.latency_samples
         ud[cb.U_METER], ud[cb.U_METER_LEN] = self.meter.ctypes.data, cb.METER_SIZE
         ud[cb.U_ELRING], ud[cb.U_RINGLEN] = self.elring.ctypes.data, ELRING
@@ -326,7 +347,10 @@ class Engine:
         ud[cb.U_GUARD_XF] = max(1, int(round(GUARD_XFADE_MS * self.fs / 1000)))
         ud[cb.U_BUDGET_NS] = int(round(1e9 * self.blocksize / self.fs))  # of CPU time
         ud[cb.U_BLOCKSIZE] = self.blocksize
-        # extra instances (same settings, own state, output discarded) to measure headroom
+
+    def _add_instances(self, processor, instances):
+        """Extra instances (same settings, own state, output discarded) to measure headroom."""
+        maxf, ud, job, kernel = self.maxf, self.ud, self.jobs[0], self._kernel_cfunc
         self._extra = []
         self.extra_table = np.zeros((max(int(instances) - 1, 1), 2), np.int64)
         self.y_extra = np.zeros((maxf, self.ch), np.float32)
@@ -347,6 +371,9 @@ class Engine:
         ud[cb.U_NEXTRA] = len(self._extra)
         self.stats[cb.S_PERIOD_NS] = int(round(1e9 * self.blocksize / self.fs))
 
+    def _control_state(self, processor, meters):
+        """The control side's own state: meters, recent input, change and notice logs, and
+        the memory the stream will own."""
         self.meters_in = MeterSet(self.fs, self.ch) if meters else None
         self.meters_out = MeterSet(self.fs, self.ch) if meters else None
         self._snapshot_meters = {}
@@ -371,7 +398,6 @@ class Engine:
             [self.jobs, self.main_ring, self.key_ring, self.tap_ring]
         self._mem.slots = self._slot_owner
         self._mem.extra = self._extra
-        self._warm_callback()
 
     @property
     def job(self):
