@@ -377,10 +377,10 @@ def _compile_stage(path, stage, fn, nstate):
 def _compile_kernel(path, fn, nstate):
     """The file's kernel wrapped to livedyn's kernel contract, and as a live job function."""
     import numba as nb
-    from numba import carray, types
+    from numba import types
 
     from ..dsp.layout import NROWS, S_FRAMES, T_KEY
-    from ..engine.callback import JOB_SIG, JOB_SIZE, J_CALLS, _job_arrays
+    from ..dsp.abi import job_function
 
     jit = jit_of(fn)
 
@@ -404,13 +404,7 @@ def _compile_kernel(path, fn, nstate):
         blk.compile(sig)
         blk.disable_compile()
 
-        def job(jp):
-            j = carray(jp, (JOB_SIZE,), np.int64)
-            x, k, y, p, st, ring, tr = _job_arrays(j)
-            blk(x, k, y, p, st, ring, tr)
-            j[J_CALLS] += 1
-
-        cf = nb.cfunc(JOB_SIG, nopython=True, error_model="numpy")(job)
+        cf = job_function(blk)
     except Exception as e:
         raise compile_error(path, "kernel", e) from None
     return blk, cf

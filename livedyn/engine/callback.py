@@ -6,107 +6,31 @@ uses is preallocated by :class:`livedyn.engine.engine.Engine` and reached throug
 *user-data block* ``ud`` of addresses and sizes (``U_*`` below). Parameters arrive through a
 sequence lock; meters, statistics and a tap of the signals leave through arrays and
 single-producer single-consumer rings whose indices are published with release stores and read
-with acquire loads (LLVM atomics, see :mod:`livedyn.engine.intrinsics`).
+with acquire loads (LLVM atomics, see :mod:`livedyn.dsp.intrinsics`). The layouts of all
+those blocks, the job functions and the last stage are declared in :mod:`livedyn.dsp.abi`.
 
-Per block: timing and flags; parameter handoff (echoing the sequence number used); main and key
-input from the device channels or from file rings; the processor kernel, called through an
-address table so that the kernel can change at a block boundary without recompiling the
-callback; monitor selection (processed, key, delta); the always-on last stage (non-finite mute,
-fade, mute, ceiling); output channel map; peak meters; the tap ring for the recorder and meters.
+Per callback: ``timing_stage`` (wake-up interval, host cycles, lateness); then, per piece of at
+most ``U_MAXF`` frames, ``block_body``: the parameter handoff, ``input_stage`` (device channels
+or file rings), ``kernel_stage`` (the kernel through an address table, so that it can change at
+a block boundary without recompiling the callback), ``swap_stage`` (a live swap's second
+version and crossfade), ``dry_stage`` (dry delay line: bypass, delta, the guard's fade; the key
+monitor), ``safety_stage`` (non-finite mute, fade, mute, ceiling), ``output_stage`` (channel
+map), ``meter_stage`` (peaks), ``tap_stage`` (for the recorder and meters); then the canary,
+``guard_stage`` (the overrun guard on the callback's CPU time) and ``account_stage`` (the
+callback's own figures).
 """
 import numba as nb
 import numpy as np
 from numba import carray, types
 
-from ..dsp.dynamics import dynamics_block as _DYN
-from ..dsp.layout import NTRACE, S_GR_MAX, T_KEY
-from ..dsp.limiter import limiter_block as _LIM
-from .intrinsics import (
-    call_job, compare_exchange, fence_acquire, fence_release, int_to_voidptr, load_acquire, load_relaxed,
-    monotonic_ns, store_relaxed, store_release, thread_cpu_ns, voidptr_to_int,
+# the shared layouts (U_*, J_*, S_*, F_*, M_*, H_*), the job functions and the last stage
+from ..dsp.abi import *  # noqa: F401,F403
+from ..dsp.abi import JIT, safety_stage  # noqa: F401  (named for readers)
+from ..dsp.intrinsics import (
+    call_job, compare_exchange, fence_acquire, fence_release, int_to_voidptr, load_acquire,
+    load_relaxed, monotonic_ns, store_relaxed, store_release, thread_cpu_ns, voidptr_to_int,
 )
-
-JIT = dict(cache=True, nogil=True, error_model="numpy")
-
-# ---- job block: one kernel call (int64) -----------------------------------------------------
-J_X, J_K, J_Y, J_FRAMES, J_CH, J_KCH = 0, 1, 2, 3, 4, 5
-J_P, J_PLEN = 6, 7
-J_ST, J_STR, J_STC = 8, 9, 10
-J_RING, J_RINGR, J_RINGC = 11, 12, 13
-J_TR, J_TRN, J_TRC = 14, 15, 16  # trace buffer; J_TRN = frames to trace (0: none)
-J_CALLS = 17
-JOB_SIZE = 24
-
-# ---- user-data block (int64) ----------------------------------------------------------------
-U_STATS, U_STATS_LEN = 0, 1
-U_NIN, U_NOUT = 2, 3  # device channels
-U_CH, U_KCH = 4, 5  # processor main and key channels
-U_X, U_K, U_Y, U_MAXF = 6, 7, 8, 9  # scratch float32 (maxf, ch) / (maxf, kch) / (maxf, ch)
-U_MAIN_MAP, U_KEY_MAP, U_OUT_MAP = 10, 11, 12  # int64 arrays: device channel per channel
-U_MAIN_RING, U_KEY_RING, U_TAP_RING = 13, 14, 15  # ring headers (0: not used)
-U_SEQ, U_PPEND, U_PTMP, U_LAST_SEQ = 16, 17, 18, 19
-U_KSLOT, U_KTABLE, U_NKSLOT = 20, 21, 22  # kernel address table (fn, job) per slot
-U_MONITOR, U_BYPASS, U_MUTE = 23, 24, 25
-U_SAFE = 26  # float64 safety state
-U_DRY, U_DRY_LEN, U_DRY_POS, U_LATENCY = 27, 28, 29, 30  # float32 (len, ch) dry delay line
-U_METER, U_METER_LEN = 31, 32  # float64 meters
-U_CANARY_EVERY, U_CANARY_NS = 33, 34  # test switch: overrun on purpose every Nth block
-U_ELRING, U_RINGLEN = 35, 36  # int64 (ringlen, 3): elapsed ns, interval ns, flags per block
-U_SEQLOG, U_SEQLOG_LEN = 37, 38  # int64 (len, 2): (parameter sequence, frame) when applied
-U_STOPPING = 39
-U_EXTRA, U_NEXTRA = 40, 41  # int64 (n, 2) (fn, job) of extra instances (bench), run after
-# live swap: the control side fills the incoming slot, then stores a new request number in
-# U_SWAP_REQ (release); the callback runs both versions (warm-up, then crossfade) while it is
-# not 0, and completes by a compare-and-swap of U_SWAP_REQ from that number to 0, then echoes
-# U_SWAP_DONE = the number. The control side cancels with a compare-and-swap to 0 of its own:
-# exactly one of the two succeeds, so a cancelled swap never completes later.
-U_SWAP_REQ, U_SWAP_DONE, U_SWAP_SLOT = 42, 43, 44
-U_SWAP_WARM, U_SWAP_XF, U_SWAP_POS, U_SWAP_LAT = 45, 46, 47, 48
-U_Y2 = 49  # float32 (maxf, ch) scratch output of the incoming version
-U_SWAP_TAIL = 50  # blocks after a swap still counted as part of it (status flags arrive late)
-U_SWAP_ACTIVE = 51  # 1 while this block ran two versions
-# overrun guard: after U_GUARD_N blocks in a row over U_BUDGET_NS, crossfade to bypass
-U_GUARD_ON, U_GUARD_N, U_GUARD_COUNT, U_GUARD_STATE, U_GUARD_POS = 52, 53, 54, 55, 56
-U_GUARD_XF, U_BUDGET_NS = 57, 58
-# host cycles (timing_stage): start time and frame count of the current one, the end of the
-# previous callback, and the engine's block size
-U_CYCLE_T0, U_CYCLE_F0, U_T_END, U_BLOCKSIZE, U_CYCLE_OVER = 59, 60, 61, 62, 63
-U_JOB = 64  # the kernel job block of slot 0 lives at ud[U_JOB:U_JOB + JOB_SIZE]
-UD_SIZE = U_JOB + JOB_SIZE
-GUARD_OK, GUARD_FADING, GUARD_BYPASSED = 0, 1, 2
-SWAP_BIT = 16  # set in a block's flags column of the elapsed-time ring when it ran two versions
-LATE_BIT = 17  # set there when the block was counted late (S_LATE)
-
-MONITOR_OUT, MONITOR_KEY, MONITOR_DELTA = 0, 1, 2
-
-# ---- statistics (int64) ---------------------------------------------------------------------
-S_BLOCKS, S_FRAMES, S_T_FIRST, S_T_LAST = 0, 1, 2, 3
-S_EL_LAST, S_EL_MAX = 4, 5
-S_LATE, S_FLAGGED, S_FLAGS_OR = 6, 7, 8
-S_PARAM_SEQ, S_PARAM_FRAME, S_PARAM_TORN = 9, 10, 11
-S_UNDER_MAIN, S_UNDER_KEY, S_TAP_DROPPED = 12, 13, 14
-S_NONFINITE_BLOCKS, S_TOO_BIG, S_PERIOD_NS = 15, 16, 17
-S_CANARY, S_NULL_IN, S_LAST_OVERRUN = 18, 19, 20
-S_KSLOT_USED = 21
-S_SWAPS, S_SWAP_BLOCKS, S_SWAP_EL_MAX, S_SWAP_FLAGGED, S_SWAP_LATE = 22, 23, 24, 25, 26
-S_GUARD_TRIPS, S_GUARD_EL = 27, 28  # times the overrun guard bypassed; the block time then
-S_SWAP_FRAME = 29  # first frame the last swapped-in version ran alone
-S_HOST_FRAMES, S_CPU_MAX = 30, 31  # frames of the last host cycle; largest callback CPU ns
-STATS_SIZE = 32
-
-# ---- safety state (float64) -----------------------------------------------------------------
-F_GAIN, F_TARGET, F_FADE_STEP, F_MUTE_STEP, F_CEIL = 0, 1, 2, 3, 4
-SAFE_SIZE = 8
-
-# ---- meters (float64), written every block --------------------------------------------------
-# [0:8] input peak per main channel, [8:16] output peak per channel, [16:24] key peak,
-# [24] gain reduction dB (largest in block)
-M_IN, M_OUT, M_KEY, M_GR = 0, 8, 16, 24
-METER_SIZE = 32
-
-# ---- SPSC ring header (int64) ---------------------------------------------------------------
-H_BUF, H_CAP, H_WIDTH, H_HEAD, H_TAIL, H_COUNT = 0, 1, 2, 3, 4, 5
-RING_HDR = 8
+from ..dsp.layout import NTRACE, S_GR_MAX, T_KEY
 
 
 @nb.njit(**JIT)
@@ -231,79 +155,6 @@ def take_params(ud, stats, frame0):
         log[k, 1] = frame0
     store_release(stats, S_PARAM_FRAME, frame0)
     store_release(stats, S_PARAM_SEQ, s1)
-
-
-# ---- kernels callable through the address table: void fn(void *job) -------------------------
-
-@nb.njit(**JIT)
-def _job_arrays(job):
-    n = job[J_FRAMES]
-    x = carray(int_to_voidptr(job[J_X]), (n, job[J_CH]), np.float32)
-    k = carray(int_to_voidptr(job[J_K]), (n, job[J_KCH]), np.float32)
-    y = carray(int_to_voidptr(job[J_Y]), (n, job[J_CH]), np.float32)
-    p = carray(int_to_voidptr(job[J_P]), (job[J_PLEN],), np.float64)
-    st = carray(int_to_voidptr(job[J_ST]), (job[J_STR], job[J_STC]), np.float64)
-    ring = carray(int_to_voidptr(job[J_RING]), (job[J_RINGR], job[J_RINGC]), np.float64)
-    tr = carray(int_to_voidptr(job[J_TR]), (NTRACE, job[J_TRN], job[J_TRC]), np.float64)
-    return x, k, y, p, st, ring, tr
-
-
-JOB_SIG = types.void(types.voidptr)
-
-
-@nb.cfunc(JOB_SIG, nopython=True, error_model="numpy", cache=True)
-def job_dynamics(jp):
-    job = carray(jp, (JOB_SIZE,), np.int64)
-    x, k, y, p, st, ring, tr = _job_arrays(job)
-    _DYN(x, k, y, p, st, ring, tr)
-    job[J_CALLS] += 1
-
-
-@nb.cfunc(JOB_SIG, nopython=True, error_model="numpy", cache=True)
-def job_limiter(jp):
-    job = carray(jp, (JOB_SIZE,), np.int64)
-    x, k, y, p, st, ring, tr = _job_arrays(job)
-    _LIM(x, k, y, p, st, ring, tr)
-    job[J_CALLS] += 1
-
-
-# ---- the last stage -------------------------------------------------------------------------
-
-@nb.njit(**JIT)
-def safety_stage(y, n, ch, safe, mute, stats):
-    """Non-finite samples mute the whole block (counted); then fade/mute gain; then ceiling."""
-    bad = False
-    for i in range(n):
-        for c in range(ch):
-            v = y[i, c]
-            if not (v - v == 0.0):  # NaN or +-inf
-                bad = True
-    if bad:
-        stats[S_NONFINITE_BLOCKS] += 1
-        for i in range(n):
-            for c in range(ch):
-                y[i, c] = 0.0
-    g = safe[F_GAIN]
-    target = 0.0 if mute != 0 else safe[F_TARGET]
-    step = safe[F_MUTE_STEP] if mute != 0 else safe[F_FADE_STEP]
-    ceil = safe[F_CEIL]
-    for i in range(n):
-        if g < target:
-            g += step
-            if g > target:
-                g = target
-        elif g > target:
-            g -= step
-            if g < target:
-                g = target
-        for c in range(ch):
-            v = y[i, c] * g
-            if v > ceil:
-                v = ceil
-            elif v < -ceil:
-                v = -ceil
-            y[i, c] = v
-    safe[F_GAIN] = g
 
 
 @nb.njit(**JIT)

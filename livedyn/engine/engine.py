@@ -313,7 +313,7 @@ class Engine:
         kernel = _job_function(processor.algorithm)
         self._kernel_cfunc = kernel
         ud = self.ud
-        ud[cb.U_STATS], ud[cb.U_STATS_LEN] = self.stats.ctypes.data, cb.STATS_SIZE
+        ud[cb.U_STATS] = self.stats.ctypes.data
         ud[cb.U_NIN], ud[cb.U_NOUT] = self.n_in, self.n_out
         ud[cb.U_CH], ud[cb.U_KCH] = self.ch, self.kch
         ud[cb.U_X], ud[cb.U_K], ud[cb.U_Y] = (self.x.ctypes.data, self.k.ctypes.data,
@@ -332,7 +332,7 @@ class Engine:
         ud[cb.U_SAFE] = self.safe.ctypes.data
         ud[cb.U_DRY], ud[cb.U_DRY_LEN] = self.dry.ctypes.data, self.dry.shape[0]
         ud[cb.U_LATENCY] = processor.latency_samples
-        ud[cb.U_METER], ud[cb.U_METER_LEN] = self.meter.ctypes.data, cb.METER_SIZE
+        ud[cb.U_METER] = self.meter.ctypes.data
         ud[cb.U_ELRING], ud[cb.U_RINGLEN] = self.elring.ctypes.data, ELRING
         ud[cb.U_SEQLOG], ud[cb.U_SEQLOG_LEN] = self.seqlog.ctypes.data, SEQLOG
         job = self.jobs[0]
@@ -417,7 +417,6 @@ class Engine:
         job[cb.J_ST], job[cb.J_STR], job[cb.J_STC] = st.ctypes.data, *st.shape
         job[cb.J_RING], job[cb.J_RINGR], job[cb.J_RINGC] = ring.ctypes.data, *ring.shape
         job[cb.J_TR], job[cb.J_TRN], job[cb.J_TRC] = self.trace.ctypes.data, 0, st.shape[1]
-        job[cb.J_CALLS] = 0
 
     # ---- life cycle ---------------------------------------------------------------------------
     def _warm_callback(self):
