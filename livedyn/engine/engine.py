@@ -1,9 +1,11 @@
 """Engine: a Processor running live inside a PortAudio stream, and its control surface.
 
-``Engine(...)``, ``start()``, ``set(name, value)``, ``snapshot()``, ``load_preset()``,
-``bypass()``, ``mute()``, ``monitor()``, ``stop()`` may be called from any thread: parameter
-changes go through a sequence lock that the native callback reads once per block, and every
-other control is one aligned int64 store.
+``Engine(...)``, ``start()``, ``set(name, value)``, ``set_many(values)``, ``snapshot()``,
+``load_preset()``, ``bypass()``, ``mute()``, ``monitor()``, ``stop()`` may be called from any
+thread: parameter changes go through a sequence lock that the native callback reads once per
+block (a whole preset in one publication), and every other control is one aligned int64 store.
+The stream owns the memory the callback touches; every way of stopping (``stop()``, a dropped
+Engine, a dead server) stops and closes the stream before any of it can be freed.
 """
 from __future__ import annotations
 
@@ -555,13 +557,15 @@ class Engine:
         self._rec.writers = writers
         self._recording = True
 
-    def stop(self, timeout=2.0):
+    def stop(self, timeout=2.0, stream_timeout=None):
         """Fade out, stop and close the stream, end the helper threads, close the recordings
         and write the automation. Idempotent.
 
         The stream is always stopped and closed before anything it touches is let go; after a
         dead server or device, whose stop never returns, the stream is abandoned with its
-        memory (see :meth:`NativeStream.shutdown`) and the rest proceeds."""
+        memory (see :meth:`NativeStream.shutdown`) and the rest proceeds. ``stream_timeout``:
+        how long to wait for PortAudio's stop (default 5 s, 0.5 s once ``error`` is set; 0 when
+        the caller knows that the server is gone)."""
         with self._lock:
             if self._closed:
                 return
@@ -574,7 +578,9 @@ class Engine:
                 while self.safe[cb.F_GAIN] > 0.0 and time.monotonic() < t_end and self.alive():
                     time.sleep(0.005)
                 time.sleep(2 * self.blocksize / self.fs)
-            self.stream.shutdown(timeout=5.0 if self.error is None else 0.5)
+            if stream_timeout is None:
+                stream_timeout = 5.0 if self.error is None else 0.5
+            self.stream.shutdown(timeout=stream_timeout)
         # no block runs any more (or ever will): the tap thread drains what is left, closes
         # the recordings and ends
         self._stop_evt.set()

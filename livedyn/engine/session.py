@@ -245,7 +245,8 @@ class LiveSession:
             snap["stopped_by"] = signal.Signals(self.signal_received).name
         if self.failure:
             eng.error = self.failure
-        eng.stop()
+        dead = self.server is not None and not self.server.alive()
+        eng.stop(stream_timeout=0.05 if dead else None)  # a dead server's stop never returns
         snap["realtime_granted"] = bool(self.server.realtime_granted) if self.server else None
         self.snapshot = snap
         if stats_json:
