@@ -444,74 +444,6 @@ def cmd_devices(args):
     return 0
 
 
-def _status_line(snap, t):
-    def peaks(v):
-        return "/".join("-inf" if x <= -199 else f"{x:.1f}" for x in v) or "-"
-
-    load = snap["callback_load"]
-    return (f"{t:6.1f} s  in {peaks(snap['peak_in_dbfs'])}  out {peaks(snap['peak_out_dbfs'])} "
-            f"dBFS  GR {snap['gain_reduction_db']:.1f} dB  load {100 * load['median']:.1f} % "
-            f"(max {100 * load['max']:.0f} %)  late {snap['late_blocks']}  flagged "
-            f"{snap['flagged_blocks']}")
-
-
-def _run_with_status_lines(eng, server, main_src, args, seconds):
-    """One status line a second until the time is up, the input ends, or the stream fails."""
-    import time
-
-    t0 = time.monotonic()
-    next_line = 1.0
-    try:
-        while True:
-            time.sleep(0.05)
-            t = time.monotonic() - t0
-            if not eng.watch() or (server is not None and not server.alive()):
-                return eng.error or (f"the JACK server {server.name} stopped while the "
-                                     "stream ran (killed or crashed)")
-            for level, text in eng.take_notices():
-                print(f"{t:6.1f} s  {level}: {text}", flush=True)
-            if t >= next_line:
-                print(_status_line(eng.snapshot(), t), flush=True)
-                next_line += 1.0
-            if seconds is not None and t >= seconds:
-                return None
-            if main_src is not None and not args.loop and eng.source_finished:
-                return None
-    except KeyboardInterrupt:
-        print("stopping", flush=True)
-    return None
-
-
-def _run_with_console(eng, server, main_src, args, seconds, controls=None):
-    """The full-screen console until the user quits (or the time is up)."""
-    from .console import run_console
-
-    def check():
-        if server is not None and not server.alive():
-            return f"the JACK server {server.name} stopped while the stream ran"
-        if main_src is not None and not args.loop and eng.source_finished:
-            return "the input has played to its end"
-        return None
-
-    own = controls is None  # the console's midi command needs the remote-control hub
-    if own:
-        from .control.hub import Controls
-
-        controls = Controls(eng).start()
-    try:
-        run_console(eng, title="livedyn run" + (" (headless)" if server else ""),
-                    check=check, quit_after=seconds, refresh_hz=args.ui_refresh,
-                    controls=controls)
-    except KeyboardInterrupt:
-        pass
-    finally:
-        if own:
-            controls.stop()
-    if server is not None and not server.alive():
-        return f"the JACK server {server.name} stopped while the stream ran (killed or crashed)"
-    return eng.error
-
-
 def cmd_run(args):
     from .engine.jackserver import JackError
     from .engine.stream import DeviceError
@@ -523,11 +455,9 @@ def cmd_run(args):
 
 
 def _cmd_run(args):
-    import os
+    import signal
 
-    from .engine import stream as st
-    from .engine.engine import ArraySource, Engine, FileSource
-    from .engine.jackserver import JackServer
+    from .engine.engine import ArraySource, FileSource
     from .render import build_processor
 
     print(CAUTION, flush=True)
@@ -585,92 +515,65 @@ def _cmd_run(args):
     except ParamError as e:
         raise CliError(f"--output-level {args.output_level}: {e}") from None
 
-    server = None
-    if args.headless:
-        need_in = max([2] + (main_in or []) + (key_in or []))
-        need_out = max([2] + (outs or []))
-        server = JackServer(int(fs), args.blocksize, capture=need_in, playback=need_out,
-                            realtime=not args.no_realtime).start()
-        st.reinitialise()
+    from .engine.session import LiveSession
+
+    session = LiveSession(
+        proc, args.blocksize, headless=args.headless, realtime=not args.no_realtime,
+        capture=max([2] + (main_in or []) + (key_in or [])),
+        playback=max([2] + (outs or [])), watch=args.watch,
+        device=args.device if not args.headless else None, input_device=args.input_device,
+        output_device=args.output_device, main_inputs=main_in, key_inputs=key_in, outputs=outs,
+        main_source=main_src, key_source=key_src, record_dir=args.record, monitor=args.monitor,
+        output_level_db=out_level)
+    print(f"{proc.algorithm.name}: " +
+          ", ".join(f"{k} {v}" for k, v in proc.describe().items()), flush=True)
+    session.open()
+    server, eng = session.server, session.engine
+    if server is not None:
         print(f"headless: JACK server {server.name} (dummy backend, {fs:g} Hz, "
-              f"{args.blocksize} frames, real time {'granted' if server.realtime_granted else 'off'})",
-              flush=True)
+              f"{args.blocksize} frames, real time "
+              f"{'granted' if server.realtime_granted else 'off'})", flush=True)
         if server.realtime_note and not args.no_realtime:
             print(server.realtime_note, flush=True)
-    try:
-        eng = Engine(proc, args.blocksize, device=args.device if not args.headless else "system",
-                     input_device=args.input_device, output_device=args.output_device,
-                     main_inputs=main_in, key_inputs=key_in, outputs=outs, main_source=main_src,
-                     key_source=key_src, record_dir=args.record, monitor=args.monitor,
-                     realtime=not args.no_realtime,
-                     output_level_db=out_level)
-        print(f"{proc.algorithm.name}: " +
-              ", ".join(f"{k} {v}" for k, v in proc.describe().items()))
-        print(f"latency: processor {proc.latency_samples} samples", end="")
-        try:
-            eng.start()  # checks rate and channels before the stream opens
-        finally:
-            if eng.stream is None:
-                print(flush=True)  # end the line begun above
-        if args.loopback:
-            pairs = server.loopback()
-            print(f"; loopback {', '.join(f'{a}->{b}' for a, b in pairs)}", end="")
-    except BaseException:
-        st.terminate()  # closes a stream left open, before its server goes
-        if server is not None:
-            server.stop()
-        raise
-    print(f"; stream reports input {1000 * eng.stream.input_latency:.2f} ms, output "
+    line = f"latency: processor {proc.latency_samples} samples"
+    if args.loopback:
+        pairs = server.loopback()
+        line += f"; loopback {', '.join(f'{a}->{b}' for a, b in pairs)}"
+    print(line + f"; stream reports input {1000 * eng.stream.input_latency:.2f} ms, output "
           f"{1000 * eng.stream.output_latency:.2f} ms", flush=True)
     from .engine.realtime import describe
 
     print(describe(eng.wait_realtime(1.0)), flush=True)
-    watcher = None
-    if args.watch:
-        from .engine.watch import FileWatcher
-
-        watcher = FileWatcher(eng, proc.algorithm.source).start()
+    if session.watcher is not None:
         print(f"watching {proc.algorithm.source}: save it to hear the new version", flush=True)
-    failure = None
     controls = _start_controls(eng, args, osc)
     if seconds is None and (main_src is None or args.loop or main_src.kind != "input"):
         print("runs until you stop it (q in the console, Ctrl+C otherwise)", flush=True)
-    if not args.no_ui and sys.stdin.isatty() and sys.stdout.isatty():
-        failure = _run_with_console(eng, server, main_src, args, seconds, controls)
-    else:
-        failure = _run_with_status_lines(eng, server, main_src, args, seconds)
-    if controls is not None:
-        controls.stop()
-    if watcher is not None:
-        watcher.stop()
-    snap = eng.snapshot()
-    if watcher is not None:
-        snap["watch"] = {"versions_swapped": watcher.versions, "failed_loads": watcher.failures,
-                         "swaps": eng.swap_log}
-    if failure:
-        eng.error = failure
-    eng.stop()
-    if args.stats_json:
-        from .files import write_text_atomic
+    until_end = main_src is not None and not args.loop
+    own_controls = interactive and controls is None  # the console's midi command needs a hub
+    if own_controls:
+        from .control.hub import Controls
 
-        snap["realtime_granted"] = bool(snap["realtime"]["granted"])  # the callback's thread
-        snap["server_realtime"] = bool(server.realtime_granted) if server else None
-        write_text_atomic(args.stats_json, json.dumps(snap, indent=2, default=float) + "\n")
-    if failure:
-        print(f"livedyn: error: {failure}", file=sys.stderr, flush=True)
-        if server is not None:
-            server.reclaim()
-        sys.stdout.flush()
-        os._exit(3)  # PortAudio cannot be shut down cleanly once its server is gone
-    st.terminate()
-    if server is not None:
-        server.stop()
+        controls = Controls(eng).start()
+    try:
+        if interactive:
+            session.run_console(seconds, until_source_ends=until_end, refresh_hz=args.ui_refresh,
+                                controls=controls)
+        else:
+            session.run_status_lines(seconds, until_source_ends=until_end)
+    finally:
+        if controls is not None:
+            controls.stop()
+    snap = session.close(stats_json=args.stats_json)  # on a failure: one line, exit code 3
     print(f"done: {snap['blocks']} blocks, {snap['late_blocks']} late, "
           f"{snap['flagged_blocks']} flagged, callback load median "
           f"{100 * snap['callback_load']['median']:.1f} % / 99.9th "
           f"{100 * snap['callback_load']['p99_9']:.1f} % of the block period"
           + (f"; recorded to {args.record}/" if args.record else ""))
-    return 0
+    # an orderly stop by SIGTERM or SIGHUP says so in the exit code (128 + the signal's
+    # number, common practice, no source); Ctrl+C (SIGINT) is the usual way to end a run
+    sig = session.signal_received
+    return 0 if sig in (None, signal.SIGINT) else 128 + int(sig)
 
 
 def _test_sources(args, fs, main_src, key_src, ch, kch):

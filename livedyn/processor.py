@@ -126,16 +126,30 @@ class Processor:
             One line: a value out of range, a filter at or above half the sample rate, or a
             combination this processor cannot run (see :meth:`check_combination`).
         """
-        prm = self.schema[name]
-        v = prm.parse(value)
-        if prm.name in ("key_lpf", "key_bpf") and v >= self.samplerate / 2:
-            raise ParamError(
-                f"{prm.name} = {v:g} Hz: must be below half the sample rate "
-                f"({self.samplerate / 2:g} Hz)")
+        trial, parsed = self.validate_many({name: value}, base)
+        return parsed[0]
+
+    def validate_many(self, values, base=None):
+        """Check several parameter changes made together (a whole preset, say) without making
+        them: each value on its own, then the combination they make.
+
+        Returns ``(trial, [(Param, float), ...])``: the parameter array with the changes applied
+        (a copy of ``base``, default this processor's own) and each parameter with its stored
+        value. Raises ParamError (one line) as :meth:`validate` does.
+        """
         trial = (self.p if base is None else base).copy()
-        trial[prm.slot] = v
+        parsed = []
+        for name, value in dict(values).items():
+            prm = self.schema[name]
+            v = prm.parse(value)
+            if prm.name in ("key_lpf", "key_bpf") and v >= self.samplerate / 2:
+                raise ParamError(
+                    f"{prm.name} = {v:g} Hz: must be below half the sample rate "
+                    f"({self.samplerate / 2:g} Hz)")
+            trial[prm.slot] = v
+            parsed.append((prm, v))
         self.check_combination(trial)
-        return prm, v
+        return trial, parsed
 
     def get(self, name) -> float:
         return float(self.p[self.schema[name].slot])

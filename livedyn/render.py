@@ -381,7 +381,7 @@ def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_lat
     key_blocks = key.blocks(blocksize) if key is not None else None
     safety = None
     if safety_ceiling_db is not None:
-        from .engine.callback import F_CEIL, F_GAIN, F_TARGET, SAFE_SIZE, STATS_SIZE, safety_stage
+        from .dsp.abi import F_CEIL, F_GAIN, F_TARGET, SAFE_SIZE, STATS_SIZE, safety_stage
 
         safe = np.zeros(SAFE_SIZE)
         safe[F_GAIN] = safe[F_TARGET] = 1.0

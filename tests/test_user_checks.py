@@ -133,7 +133,7 @@ def test_a_kernel_that_leaves_output_unwritten_is_refused(tmp_path):
         load(write(tmp_path, text))
 
 
-def test_allocation_per_call_is_reported(tmp_path):
+def test_allocation_per_call_is_refused_at_load(tmp_path):
     text = '''
     import numpy as np
     PARAMS = ["threshold", "ratio"]
@@ -142,8 +142,12 @@ def test_allocation_per_call_is_reported(tmp_path):
         a[0] = min(0.0, p[P.threshold] - x)
         return a[0] * 0.0
     '''
-    alg = load(write(tmp_path, text))
-    assert any("gain_curve allocate(s) on the heap" in ln for ln in alg.report), alg.report
+    f = write(tmp_path, text)
+    # the compiled code's check (livedyn.dsp.ircheck) refuses it before any run
+    with pytest.raises(UserAlgorithmError) as e:
+        load(f)
+    assert "gain_curve allocates in the audio thread" in str(e.value)
+    assert str(e.value).startswith(f"{f.resolve()}:") or str(e.value).startswith(f"{f}:")
     # negative control: the same without the array reports none
     plain = load(write(tmp_path, "PARAMS = ['threshold', 'ratio']\n"
                                  "def gain_curve(x, p):\n    return 0.0\n", "plain.py"))

@@ -182,9 +182,12 @@ def _build(path, source, digest):
                   stages=tuple(fns), digest=digest, needs_key=needs_key, module=module)
     if "kernel" in fns:
         blk, job = _compile_kernel(path, fns["kernel"], nstate)
+        _check_native(path, "kernel", fns["kernel"], job)
         return Algorithm(name, desc or f"user kernel {path.name}", schema, "user", 0,
                          user_block=blk, user_job=job, **common)
     compiled = {stage: _compile_stage(path, stage, fn, nstate) for stage, fn in fns.items()}
+    for stage, fn in fns.items():
+        _check_native(path, stage, fn, compiled[stage])
     law = LAW_USER if "gain_curve" in fns else LAW_COMPRESSOR
     return Algorithm(name, desc or f"user algorithm {path.name}", schema, "dynamics", law,
                      user_curve=compiled.get("gain_curve"),
@@ -305,6 +308,28 @@ def _count(path, module, name, lo, hi):
 _ANSI = re.compile(r"\x1b\[[0-9;]*m")
 
 
+def _check_native(path, stage, fn, cfunc):
+    """Refuse a stage or kernel whose compiled code can reach an allocation, numba's runtime
+    or the interpreter lock (the real-time contract; livedyn.dsp.ircheck), naming the file and
+    the line where the stage is defined."""
+    from ..dsp.ircheck import check_native
+
+    bad = check_native(cfunc)
+    if bad:
+        code = getattr(getattr(fn, "py_func", fn), "__code__", None)
+        line = code.co_firstlineno if code is not None else None
+        alloc = [b for b in bad if "NRT_MemInfo_alloc" in b or "NRT_Allocate" in b
+                 or b.endswith(("malloc", "calloc", "realloc"))]
+        lock = [b for b in bad if "gil_ensure" in b]
+        kind = "allocates" if alloc else ("takes the interpreter lock" if lock else
+                                          "may raise (which takes the interpreter lock)")
+        bad = alloc or lock or bad
+        where = f"{path}:{line}" if line else str(path)
+        raise UserAlgorithmError(
+            f"{where}: {stage} {kind} in the audio thread ({bad[0]}); "
+            "the real-time path may not allocate arrays, raise or call Python")
+
+
 def compile_error(path, what, exc):
     """One line for a numba (or Python) error raised while compiling ``what``: the file and
     line of the user's code when the message names them, and the first line of the reason."""
@@ -372,13 +397,17 @@ def _compile_kernel(path, fn, nstate):
     from numba import carray, types
 
     from ..dsp.layout import NROWS, S_FRAMES, T_KEY
-    from ..engine.callback import JOB_SIG, JOB_SIZE, J_CALLS, _job_arrays
+    from ..dsp.abi import job_function
+    from ..dsp.intrinsics import int_to_voidptr
 
     jit = jit_of(fn)
 
     def block(x, key, out, p, st, ring, tr):
         ncols = st.shape[1]
-        s = st[NROWS:NROWS + nstate].reshape((ncols, nstate))
+        # rows NROWS on as a (ncols, nstate) block, a view made without reshape (which can
+        # fail, and so raise, in compiled code)
+        s = carray(int_to_voidptr(st.ctypes.data + 8 * NROWS * ncols), (ncols, nstate),
+                   np.float64)
         jit(x, key, out, p, s)
         st[S_FRAMES, 0] += x.shape[0]
         if tr.shape[1] >= x.shape[0]:  # the key as the kernel saw it, for monitoring
@@ -396,13 +425,7 @@ def _compile_kernel(path, fn, nstate):
         blk.compile(sig)
         blk.disable_compile()
 
-        def job(jp):
-            j = carray(jp, (JOB_SIZE,), np.int64)
-            x, k, y, p, st, ring, tr = _job_arrays(j)
-            blk(x, k, y, p, st, ring, tr)
-            j[J_CALLS] += 1
-
-        cf = nb.cfunc(JOB_SIG, nopython=True, error_model="numpy")(job)
+        cf = job_function(blk)
     except Exception as e:
         raise compile_error(path, "kernel", e) from None
     return blk, cf

@@ -93,19 +93,26 @@ def _start_server(headless, samplerate, blocksize, realtime, device):
     return server, "system"
 
 
-def _engine(proc, samplerate, channels, key_channels, blocksize, device, instances=1,
-            realtime=True):
-    """An Engine playing 4 s of seeded noise in 0.1 s steps of level, looped (its first channel
-    also as the key when the processor takes one)."""
-    from livedyn.engine.engine import ArraySource, Engine
+def _sources(samplerate, channels, key_channels):
+    """4 s of seeded noise in 0.1 s steps of level, looped, as main source (and its first
+    channel as the key when the processor takes one)."""
+    from livedyn.engine.engine import ArraySource
 
     rng = np.random.default_rng(1)
     n = int(samplerate * 4)
     sig = (0.3 * rng.standard_normal((n, channels)) *
            np.repeat(rng.uniform(0.05, 1.0, n // 4800 + 1), 4800)[:n, None])
     key = ArraySource(sig[:, :1], loop=True) if key_channels else None
-    return Engine(proc, blocksize, device=device, main_source=ArraySource(sig, loop=True),
-                  key_source=key, instances=instances, meters=False, realtime=realtime)
+    return dict(main_source=ArraySource(sig, loop=True), key_source=key)
+
+
+def _engine(proc, samplerate, channels, key_channels, blocksize, device, instances=1,
+            realtime=True):
+    """An Engine playing :func:`_sources`."""
+    from livedyn.engine.engine import Engine
+
+    return Engine(proc, blocksize, device=device, instances=instances, meters=False,
+                  realtime=realtime, **_sources(samplerate, channels, key_channels))
 
 
 DEFAULT_SETTINGS = {"compressor": {"key_hpf": 100.0, "lookahead": 5.0}}
@@ -115,49 +122,47 @@ def run_stream(seconds=10.0, algorithm="compressor", instances=1, samplerate=480
                blocksize=64, channels=2, load=None, headless=True, device=None, realtime=True,
                settings=None, out=print):
     """One measured run; returns a dict of figures (shares of the block period)."""
-    from livedyn.engine import stream as st
+    from livedyn import loader
+    from livedyn.engine.session import LiveSession
 
     settings = DEFAULT_SETTINGS.get(algorithm, {}) if settings is None else settings
-    server, device = _start_server(headless, samplerate, blocksize, realtime, device)
-    try:
-        from livedyn import loader
+    kch = 1 if loader.get(algorithm).needs_key else 0
+    proc = _processor(algorithm, samplerate, channels, kch, settings)
+    session = LiveSession(proc, blocksize, headless=headless, realtime=realtime,
+                          exit_on_failure=False, out=None, device=device, instances=instances,
+                          meters=False, **_sources(samplerate, channels, kch))
+    rss0 = _rss_kib()
+    with _Load(load) as ld:
+        session.open()
+        try:
+            session.run_status_lines(seconds)  # until the time is up, a signal or a failure
+        finally:
+            snap = session.close()
+    eng, server = session.engine, session.server
+    if session.failure:
+        raise RuntimeError(f"bench stream: {session.failure}")
+    nb = min(snap["blocks"], len(eng.elring))
+    from livedyn.engine.callback import S_PERIOD_NS
 
-        kch = 1 if loader.get(algorithm).needs_key else 0
-        proc = _processor(algorithm, samplerate, channels, kch, settings)
-        eng = _engine(proc, samplerate, channels, kch, blocksize, device, instances=instances,
-                      realtime=realtime)
-        rss0 = _rss_kib()
-        with _Load(load) as ld:
-            eng.start()
-            time.sleep(seconds)
-            snap = eng.snapshot()
-            eng.stop()
-        nb = min(snap["blocks"], len(eng.elring))
-        from livedyn.engine.callback import S_PERIOD_NS
-
-        shares = eng.elring[:nb, 0] / float(eng.stats[S_PERIOD_NS])
-        rss1 = _rss_kib()
-        res = {
-            "algorithm": algorithm, "instances": instances, "samplerate": samplerate,
-            "blocksize": blocksize, "channels": channels, "seconds": seconds, "load": load,
-            "load_iterations": ld.count, "settings": settings,
-            "blocks": snap["blocks"], "late_blocks": snap["late_blocks"],
-            "flagged_blocks": snap["flagged_blocks"], "status_flags": snap["status_flags"],
-            "callback_load": snap["callback_load"], "wakeup_interval": snap["wakeup_interval"],
-            "memory_growth_kib": rss1 - rss0,
-            "stream_latency_s": snap.get("stream_latency_s"),
-            "realtime_granted": bool(server.realtime_granted) if server else None,
-            "realtime_threads": snap.get("realtime_threads"),
-            "realtime": snap.get("realtime"),
-            "callback_shares": shares,  # per block; not written to JSON
-        }
-        if out:
-            out(format_stream(res))
-        return res
-    finally:
-        st.terminate()
-        if server is not None:
-            server.stop()
+    shares = eng.elring[:nb, 0] / float(eng.stats[S_PERIOD_NS])
+    rss1 = _rss_kib()
+    res = {
+        "algorithm": algorithm, "instances": instances, "samplerate": samplerate,
+        "blocksize": blocksize, "channels": channels, "seconds": seconds, "load": load,
+        "load_iterations": ld.count, "settings": settings,
+        "blocks": snap["blocks"], "late_blocks": snap["late_blocks"],
+        "flagged_blocks": snap["flagged_blocks"], "status_flags": snap["status_flags"],
+        "callback_load": snap["callback_load"], "wakeup_interval": snap["wakeup_interval"],
+        "memory_growth_kib": rss1 - rss0,
+        "stream_latency_s": snap.get("stream_latency_s"),
+        "realtime_granted": bool(server.realtime_granted) if server else None,
+        "realtime_threads": snap.get("realtime_threads"),
+        "realtime": snap.get("realtime"),
+        "callback_shares": shares,  # per block; not written to JSON
+    }
+    if out:
+        out(format_stream(res))
+    return res
 
 
 def format_stream(r):

@@ -6,101 +6,32 @@ uses is preallocated by :class:`livedyn.engine.engine.Engine` and reached throug
 *user-data block* ``ud`` of addresses and sizes (``U_*`` below). Parameters arrive through a
 sequence lock; meters, statistics and a tap of the signals leave through arrays and
 single-producer single-consumer rings whose indices are published with release stores and read
-with acquire loads (LLVM atomics, see :mod:`livedyn.engine.intrinsics`).
+with acquire loads (LLVM atomics, see :mod:`livedyn.dsp.intrinsics`). The layouts of all
+those blocks, the job functions and the last stage are declared in :mod:`livedyn.dsp.abi`.
 
-Per block: timing and flags; parameter handoff (echoing the sequence number used); main and key
-input from the device channels or from file rings; the processor kernel, called through an
-address table so that the kernel can change at a block boundary without recompiling the
-callback; monitor selection (processed, key, delta); the always-on last stage (non-finite mute,
-fade, mute, ceiling); output channel map at the output level; peak meters; the tap ring for the recorder and meters.
+Per callback: ``timing_stage`` (wake-up interval, host cycles, lateness); then, per piece of at
+most ``U_MAXF`` frames, ``block_body``: the parameter handoff, ``input_stage`` (device channels
+or file rings), ``kernel_stage`` (the kernel through an address table, so that it can change at
+a block boundary without recompiling the callback), ``swap_stage`` (a live swap's second
+version and crossfade), ``dry_stage`` (dry delay line: bypass, delta, the guard's fade; the key
+monitor), ``safety_stage`` (non-finite mute, fade, mute, ceiling), ``output_stage`` (channel
+map, at the output level), ``meter_stage`` (peaks), ``tap_stage`` (for the recorder and meters); then the canary,
+``guard_stage`` (the overrun guard on the callback's CPU time) and ``account_stage`` (the
+callback's own figures).
 """
 import numba as nb
 import numpy as np
 from numba import carray, types
 
-from ..dsp.dynamics import dynamics_block as _DYN
-from ..dsp.layout import NTRACE, S_GR_MAX, T_KEY
-from ..dsp.limiter import limiter_block as _LIM
-from ..params import P_OUTPUT_LEVEL
-from .intrinsics import (
-    call_job, fence_acquire, fence_release, int_to_voidptr, load_acquire, load_relaxed,
-    monotonic_ns, store_relaxed, store_release, voidptr_to_int,
+# the shared layouts (U_*, J_*, S_*, F_*, M_*, H_*), the job functions and the last stage
+from ..dsp.abi import *  # noqa: F401,F403
+from ..dsp.abi import JIT, safety_stage  # noqa: F401  (named for readers)
+from ..dsp.intrinsics import (
+    call_job, compare_exchange, fence_acquire, fence_release, int_to_voidptr, load_acquire,
+    load_relaxed, monotonic_ns, store_relaxed, store_release, thread_cpu_ns, voidptr_to_int,
 )
-
-JIT = dict(cache=True, nogil=True, error_model="numpy")
-
-# ---- job block: one kernel call (int64) -----------------------------------------------------
-J_X, J_K, J_Y, J_FRAMES, J_CH, J_KCH = 0, 1, 2, 3, 4, 5
-J_P, J_PLEN = 6, 7
-J_ST, J_STR, J_STC = 8, 9, 10
-J_RING, J_RINGR, J_RINGC = 11, 12, 13
-J_TR, J_TRN, J_TRC = 14, 15, 16  # trace buffer; J_TRN = frames to trace (0: none)
-J_CALLS = 17
-JOB_SIZE = 24
-
-# ---- user-data block (int64) ----------------------------------------------------------------
-U_STATS, U_STATS_LEN = 0, 1
-U_NIN, U_NOUT = 2, 3  # device channels
-U_CH, U_KCH = 4, 5  # processor main and key channels
-U_X, U_K, U_Y, U_MAXF = 6, 7, 8, 9  # scratch float32 (maxf, ch) / (maxf, kch) / (maxf, ch)
-U_MAIN_MAP, U_KEY_MAP, U_OUT_MAP = 10, 11, 12  # int64 arrays: device channel per channel
-U_MAIN_RING, U_KEY_RING, U_TAP_RING = 13, 14, 15  # ring headers (0: not used)
-U_SEQ, U_PPEND, U_PTMP, U_LAST_SEQ = 16, 17, 18, 19
-U_KSLOT, U_KTABLE, U_NKSLOT = 20, 21, 22  # kernel address table (fn, job) per slot
-U_MONITOR, U_BYPASS, U_MUTE = 23, 24, 25
-U_SAFE = 26  # float64 safety state
-U_DRY, U_DRY_LEN, U_DRY_POS, U_LATENCY = 27, 28, 29, 30  # float32 (len, ch) dry delay line
-U_METER, U_METER_LEN = 31, 32  # float64 meters
-U_CANARY_EVERY, U_CANARY_NS = 33, 34  # test switch: overrun on purpose every Nth block
-U_ELRING, U_RINGLEN = 35, 36  # int64 (ringlen, 3): elapsed ns, interval ns, flags per block
-U_SEQLOG, U_SEQLOG_LEN = 37, 38  # int64 (len, 2): (parameter sequence, frame) when applied
-U_STOPPING = 39
-U_EXTRA, U_NEXTRA = 40, 41  # int64 (n, 2) (fn, job) of extra instances (bench), run after
-# live swap: the control side fills the incoming slot, then bumps U_SWAP_REQ (release); the
-# callback runs both versions (warm-up, then crossfade) and echoes U_SWAP_DONE = U_SWAP_REQ
-U_SWAP_REQ, U_SWAP_DONE, U_SWAP_SLOT = 42, 43, 44
-U_SWAP_WARM, U_SWAP_XF, U_SWAP_POS, U_SWAP_LAT = 45, 46, 47, 48
-U_Y2 = 49  # float32 (maxf, ch) scratch output of the incoming version
-U_SWAP_TAIL = 50  # blocks after a swap still counted as part of it (status flags arrive late)
-U_SWAP_ACTIVE = 51  # 1 while this block ran two versions
-# overrun guard: after U_GUARD_N blocks in a row over U_BUDGET_NS, crossfade to bypass
-U_GUARD_ON, U_GUARD_N, U_GUARD_COUNT, U_GUARD_STATE, U_GUARD_POS = 52, 53, 54, 55, 56
-U_GUARD_XF, U_BUDGET_NS = 57, 58
-U_JOB = 64  # the kernel job block of slot 0 lives at ud[U_JOB:U_JOB + JOB_SIZE]
-UD_SIZE = U_JOB + JOB_SIZE
-GUARD_OK, GUARD_FADING, GUARD_BYPASSED = 0, 1, 2
-SWAP_BIT = 16  # set in a block's flags column of the elapsed-time ring when it ran two versions
-
-MONITOR_OUT, MONITOR_KEY, MONITOR_DELTA = 0, 1, 2
-
-# ---- statistics (int64) ---------------------------------------------------------------------
-S_BLOCKS, S_FRAMES, S_T_FIRST, S_T_LAST = 0, 1, 2, 3
-S_EL_LAST, S_EL_MAX = 4, 5
-S_LATE, S_FLAGGED, S_FLAGS_OR = 6, 7, 8
-S_PARAM_SEQ, S_PARAM_FRAME, S_PARAM_TORN = 9, 10, 11
-S_UNDER_MAIN, S_UNDER_KEY, S_TAP_DROPPED = 12, 13, 14
-S_NONFINITE_BLOCKS, S_TOO_BIG, S_PERIOD_NS = 15, 16, 17
-S_CANARY, S_NULL_IN, S_LAST_OVERRUN = 18, 19, 20
-S_KSLOT_USED = 21
-S_SWAPS, S_SWAP_BLOCKS, S_SWAP_EL_MAX, S_SWAP_FLAGGED, S_SWAP_LATE = 22, 23, 24, 25, 26
-S_GUARD_TRIPS, S_GUARD_EL = 27, 28  # times the overrun guard bypassed; the block time then
-S_SWAP_FRAME = 29  # first frame the last swapped-in version ran alone
-STATS_SIZE = 32
-
-# ---- safety state (float64) -----------------------------------------------------------------
-F_GAIN, F_TARGET, F_FADE_STEP, F_MUTE_STEP, F_CEIL = 0, 1, 2, 3, 4
-F_LEVEL, F_LEVEL_COEF = 5, 6  # output level: gliding linear gain, its one-pole coefficient
-SAFE_SIZE = 8
-
-# ---- meters (float64), written every block --------------------------------------------------
-# [0:8] input peak per main channel, [8:16] output peak per channel, [16:24] key peak,
-# [24] gain reduction dB (largest in block)
-M_IN, M_OUT, M_KEY, M_GR = 0, 8, 16, 24
-METER_SIZE = 32
-
-# ---- SPSC ring header (int64) ---------------------------------------------------------------
-H_BUF, H_CAP, H_WIDTH, H_HEAD, H_TAIL, H_COUNT = 0, 1, 2, 3, 4, 5
-RING_HDR = 8
+from ..dsp.layout import NTRACE, S_GR_MAX, T_KEY
+from ..params import P_OUTPUT_LEVEL
 
 
 @nb.njit(**JIT)
@@ -191,6 +122,13 @@ def publish_swap(ud, req):
 
 
 @nb.njit(**JIT)
+def cancel_swap(ud, req):
+    """Control side: withdraw request ``req``. True when it was withdrawn (the callback will
+    never complete it); False when the callback had already completed it."""
+    return compare_exchange(ud, U_SWAP_REQ, req, 0) == req
+
+
+@nb.njit(**JIT)
 def take_params(ud, stats, frame0):
     s1 = load_acquire(ud, U_SEQ)
     if s1 == ud[U_LAST_SEQ] or (s1 & 1) == 1:
@@ -220,79 +158,6 @@ def take_params(ud, stats, frame0):
     store_release(stats, S_PARAM_SEQ, s1)
 
 
-# ---- kernels callable through the address table: void fn(void *job) -------------------------
-
-@nb.njit(**JIT)
-def _job_arrays(job):
-    n = job[J_FRAMES]
-    x = carray(int_to_voidptr(job[J_X]), (n, job[J_CH]), np.float32)
-    k = carray(int_to_voidptr(job[J_K]), (n, job[J_KCH]), np.float32)
-    y = carray(int_to_voidptr(job[J_Y]), (n, job[J_CH]), np.float32)
-    p = carray(int_to_voidptr(job[J_P]), (job[J_PLEN],), np.float64)
-    st = carray(int_to_voidptr(job[J_ST]), (job[J_STR], job[J_STC]), np.float64)
-    ring = carray(int_to_voidptr(job[J_RING]), (job[J_RINGR], job[J_RINGC]), np.float64)
-    tr = carray(int_to_voidptr(job[J_TR]), (NTRACE, job[J_TRN], job[J_TRC]), np.float64)
-    return x, k, y, p, st, ring, tr
-
-
-JOB_SIG = types.void(types.voidptr)
-
-
-@nb.cfunc(JOB_SIG, nopython=True, error_model="numpy", cache=True)
-def job_dynamics(jp):
-    job = carray(jp, (JOB_SIZE,), np.int64)
-    x, k, y, p, st, ring, tr = _job_arrays(job)
-    _DYN(x, k, y, p, st, ring, tr)
-    job[J_CALLS] += 1
-
-
-@nb.cfunc(JOB_SIG, nopython=True, error_model="numpy", cache=True)
-def job_limiter(jp):
-    job = carray(jp, (JOB_SIZE,), np.int64)
-    x, k, y, p, st, ring, tr = _job_arrays(job)
-    _LIM(x, k, y, p, st, ring, tr)
-    job[J_CALLS] += 1
-
-
-# ---- the last stage -------------------------------------------------------------------------
-
-@nb.njit(**JIT)
-def safety_stage(y, n, ch, safe, mute, stats):
-    """Non-finite samples mute the whole block (counted); then fade/mute gain; then ceiling."""
-    bad = False
-    for i in range(n):
-        for c in range(ch):
-            v = y[i, c]
-            if not (v - v == 0.0):  # NaN or +-inf
-                bad = True
-    if bad:
-        stats[S_NONFINITE_BLOCKS] += 1
-        for i in range(n):
-            for c in range(ch):
-                y[i, c] = 0.0
-    g = safe[F_GAIN]
-    target = 0.0 if mute != 0 else safe[F_TARGET]
-    step = safe[F_MUTE_STEP] if mute != 0 else safe[F_FADE_STEP]
-    ceil = safe[F_CEIL]
-    for i in range(n):
-        if g < target:
-            g += step
-            if g > target:
-                g = target
-        elif g > target:
-            g -= step
-            if g < target:
-                g = target
-        for c in range(ch):
-            v = y[i, c] * g
-            if v > ceil:
-                v = ceil
-            elif v < -ceil:
-                v = -ceil
-            y[i, c] = v
-    safe[F_GAIN] = g
-
-
 @nb.njit(**JIT)
 def _spin_ns(ns):
     t = monotonic_ns()
@@ -300,41 +165,50 @@ def _spin_ns(ns):
         pass
 
 
+# ---- the callback's stages, in the order a block runs them ----------------------------------
+
 @nb.njit(**JIT)
-def block_body(inp, has_in, outp, n, ud, stats, t0, status):
-    nin = ud[U_NIN]
-    nout = ud[U_NOUT]
-    ch = ud[U_CH]
-    kch = ud[U_KCH]
-    frame0 = stats[S_FRAMES]
-    period = stats[S_PERIOD_NS]
+def timing_stage(ud, stats, t0):
+    """Wake-up interval and lateness, once per callback.
+
+    Hosts often serve one host period as several callbacks back to back. A callback that
+    begins within a quarter of a block period of the previous one's end continues the same
+    host cycle; at each new cycle the frames delivered since the last cycle start are the host
+    period, and the cycle is late when it began more than 1.5 host periods after the last
+    (unless a callback of the last cycle overran: an overrun is counted by that callback).
+    Returns (interval since the previous callback's start, late)."""
     blocks = stats[S_BLOCKS]
-    # ---- timing: a block is late if it started more than 1.5 periods after the previous one
-    # and the previous one did not overrun (an overrun is counted by the block itself) ---------
+    period = stats[S_PERIOD_NS]
     interval = 0
-    started_late = False
+    late = False
     if blocks == 0:
         stats[S_T_FIRST] = t0
+        ud[U_CYCLE_T0] = t0
+        ud[U_CYCLE_F0] = stats[S_FRAMES]
     else:
         interval = t0 - stats[S_T_LAST]
-        started_late = period > 0 and 2 * interval > 3 * period and stats[S_LAST_OVERRUN] == 0
-        if started_late:
-            stats[S_LATE] += 1
+        gap = t0 - ud[U_T_END]
+        if 4 * gap >= period:  # a new host cycle
+            frames = stats[S_FRAMES] - ud[U_CYCLE_F0]
+            host_ns = frames * period // ud[U_BLOCKSIZE]
+            stats[S_HOST_FRAMES] = frames
+            late = period > 0 and 2 * (t0 - ud[U_CYCLE_T0]) > 3 * host_ns and \
+                ud[U_CYCLE_OVER] == 0
+            if late:
+                stats[S_LATE] += 1
+            ud[U_CYCLE_T0] = t0
+            ud[U_CYCLE_F0] = stats[S_FRAMES]
+            ud[U_CYCLE_OVER] = 0
     stats[S_T_LAST] = t0
-    if status != 0:
-        stats[S_FLAGGED] += 1
-        stats[S_FLAGS_OR] |= status
+    return interval, late
 
-    take_params(ud, stats, frame0)
 
-    x = carray(int_to_voidptr(ud[U_X]), (n, ch), np.float32)
-    k = carray(int_to_voidptr(ud[U_K]), (n, kch if kch > 0 else 1), np.float32)
-    y = carray(int_to_voidptr(ud[U_Y]), (n, ch), np.float32)
-    # ---- main input ----------------------------------------------------------------------------
+@nb.njit(**JIT)
+def input_stage(inp, has_in, n, ud, stats, x, k, ch, kch):
+    """Main and key input from the device channels or from the file rings."""
     if ud[U_MAIN_RING] != 0:
         hdr = carray(int_to_voidptr(ud[U_MAIN_RING]), (RING_HDR,), np.int64)
-        miss = ring_read(hdr, x, n, 0, ch)
-        if miss > 0:
+        if ring_read(hdr, x, n, 0, ch) > 0:
             stats[S_UNDER_MAIN] += 1
     else:
         mmap = carray(int_to_voidptr(ud[U_MAIN_MAP]), (ch,), np.int64)
@@ -342,12 +216,10 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
             for c in range(ch):
                 j = mmap[c]
                 x[i, c] = inp[i, j] if (has_in and j >= 0) else 0.0
-    # ---- key input -----------------------------------------------------------------------------
     if kch > 0:
         if ud[U_KEY_RING] != 0:
             hdr = carray(int_to_voidptr(ud[U_KEY_RING]), (RING_HDR,), np.int64)
-            miss = ring_read(hdr, k, n, 0, kch)
-            if miss > 0:
+            if ring_read(hdr, k, n, 0, kch) > 0:
                 stats[S_UNDER_KEY] += 1
         else:
             kmap = carray(int_to_voidptr(ud[U_KEY_MAP]), (kch,), np.int64)
@@ -355,89 +227,93 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
                 for c in range(kch):
                     j = kmap[c]
                     k[i, c] = inp[i, j] if (has_in and j >= 0) else 0.0
-    if not has_in:
-        stats[S_NULL_IN] += 1
 
-    # ---- the processor kernel, through the address table -------------------------------------
-    monitor = load_relaxed(ud, U_MONITOR)
-    slot = load_acquire(ud, U_KSLOT)
+
+@nb.njit(**JIT)
+def kernel_stage(ud, n, monitor, guard):
+    """The processor kernel of the slot in use, through the address table (not called once the
+    guard has bypassed it), then the extra instances a load measurement asks for."""
     table = carray(int_to_voidptr(ud[U_KTABLE]), (ud[U_NKSLOT], 2), np.int64)
+    slot = load_acquire(ud, U_KSLOT)
     jaddr = table[slot, 1]
     job = carray(int_to_voidptr(jaddr), (JOB_SIZE,), np.int64)
-    guard = ud[U_GUARD_STATE]
-    if guard != GUARD_BYPASSED:  # a kernel the guard took out is not called again
+    if guard != GUARD_BYPASSED:
         job[J_FRAMES] = n
         job[J_TRN] = n if monitor == MONITOR_KEY else 0
         call_job(table[slot, 0], int_to_voidptr(jaddr))
-    stats[S_KSLOT_USED] = slot
     ne = ud[U_NEXTRA]
-    if ne > 0:  # more instances of the processor on the same input (load measurement)
+    if ne > 0:
         extra = carray(int_to_voidptr(ud[U_EXTRA]), (ne, 2), np.int64)
         for e in range(ne):
             ej = carray(int_to_voidptr(extra[e, 1]), (JOB_SIZE,), np.int64)
             ej[J_FRAMES] = n
             call_job(extra[e, 0], int_to_voidptr(extra[e, 1]))
+    return jaddr  # an address, not the array: returning an array would take a reference
 
-    # ---- live swap: run the incoming version beside the current one, then crossfade --------
-    ud[U_SWAP_ACTIVE] = 0
-    dl = ud[U_DRY_LEN]
-    dry = carray(int_to_voidptr(ud[U_DRY]), (dl, ch), np.float32)
-    dpos = ud[U_DRY_POS]
-    lat = ud[U_LATENCY]
-    if lat >= dl:  # never read outside the dry line (the engine refuses such latencies)
-        lat = dl - 1
+
+@nb.njit(**JIT)
+def swap_stage(ud, stats, x, y, n, ch, monitor, guard, dry, dl, dpos, lat, frame0, jaddr):
+    """A live swap: run the incoming version beside the current one (warm-up, then a linear
+    crossfade into ``y``); complete it by compare-and-swap of the request to 0 (the control
+    side may have withdrawn it). Returns (whether two versions ran, the current job's
+    address)."""
     req = load_acquire(ud, U_SWAP_REQ)
-    swapping = req != ud[U_SWAP_DONE]
-    if swapping:
-        ud[U_SWAP_ACTIVE] = 1
-        nslot = ud[U_SWAP_SLOT]
-        njaddr = table[nslot, 1]
-        njob = carray(int_to_voidptr(njaddr), (JOB_SIZE,), np.int64)
-        njob[J_FRAMES] = n
-        njob[J_TRN] = n if monitor == MONITOR_KEY else 0  # (overwrites the old one's key trace)
-        call_job(table[nslot, 0], int_to_voidptr(njaddr))
-        y2 = carray(int_to_voidptr(ud[U_Y2]), (n, ch), np.float32)
-        warm = ud[U_SWAP_WARM]
-        pos = ud[U_SWAP_POS]
-        xfl = ud[U_SWAP_XF]
-        from_dry = guard == GUARD_BYPASSED  # the guard had bypassed: fade from the dry signal
-        for i in range(n):
-            if from_dry:  # the dry signal, delayed by the latency (this block is not yet in it)
-                if i >= lat:
-                    for c in range(ch):
-                        y[i, c] = x[i - lat, c]
-                else:
-                    r = dpos + i - lat
-                    if r < 0:
-                        r += dl
-                    for c in range(ch):
-                        y[i, c] = dry[r, c]
-            if warm > 0:  # the incoming delay line fills with live input; its output unused
-                warm -= 1
-            elif pos < xfl:
-                w = (pos + 1.0) / (xfl + 1.0)
+    if req == 0:
+        return False, jaddr
+    table = carray(int_to_voidptr(ud[U_KTABLE]), (ud[U_NKSLOT], 2), np.int64)
+    nslot = ud[U_SWAP_SLOT]
+    njaddr = table[nslot, 1]
+    njob = carray(int_to_voidptr(njaddr), (JOB_SIZE,), np.int64)
+    njob[J_FRAMES] = n
+    njob[J_TRN] = n if monitor == MONITOR_KEY else 0  # (overwrites the old one's key trace)
+    call_job(table[nslot, 0], int_to_voidptr(njaddr))
+    y2 = carray(int_to_voidptr(ud[U_Y2]), (n, ch), np.float32)
+    warm = ud[U_SWAP_WARM]
+    pos = ud[U_SWAP_POS]
+    xfl = ud[U_SWAP_XF]
+    from_dry = guard == GUARD_BYPASSED  # the guard had bypassed: fade from the dry signal
+    for i in range(n):
+        if from_dry:  # the dry signal, delayed by the latency (this block is not yet in it)
+            if i >= lat:
                 for c in range(ch):
-                    y[i, c] = np.float32((1.0 - w) * y[i, c] + w * y2[i, c])
-                pos += 1
+                    y[i, c] = x[i - lat, c]
             else:
+                r = dpos + i - lat
+                if r < 0:
+                    r += dl
                 for c in range(ch):
-                    y[i, c] = y2[i, c]
-        ud[U_SWAP_WARM] = warm
-        ud[U_SWAP_POS] = pos
-        if warm == 0 and pos >= xfl:  # done: the incoming version is the current one
-            njob[J_Y] = ud[U_Y]
-            ud[U_LATENCY] = ud[U_SWAP_LAT]
-            ud[U_GUARD_STATE] = GUARD_OK
-            ud[U_GUARD_COUNT] = 0
-            guard = GUARD_OK
-            store_release(ud, U_KSLOT, nslot)
-            stats[S_SWAPS] += 1
-            stats[S_SWAP_FRAME] = frame0 + n
-            ud[U_SWAP_TAIL] = 2
-            store_release(ud, U_SWAP_DONE, req)
-            job = njob
+                    y[i, c] = dry[r, c]
+        if warm > 0:  # the incoming delay line fills with live input; its output unused
+            warm -= 1
+        elif pos < xfl:
+            w = (pos + 1.0) / (xfl + 1.0)
+            for c in range(ch):
+                y[i, c] = np.float32((1.0 - w) * y[i, c] + w * y2[i, c])
+            pos += 1
+        else:
+            for c in range(ch):
+                y[i, c] = y2[i, c]
+    ud[U_SWAP_WARM] = warm
+    ud[U_SWAP_POS] = pos
+    if warm == 0 and pos >= xfl and compare_exchange(ud, U_SWAP_REQ, req, 0) == req:
+        # done (and not withdrawn meanwhile): the incoming version is the current one
+        njob[J_Y] = ud[U_Y]
+        ud[U_LATENCY] = ud[U_SWAP_LAT]
+        ud[U_GUARD_STATE] = GUARD_OK
+        ud[U_GUARD_COUNT] = 0
+        store_release(ud, U_KSLOT, nslot)
+        stats[S_SWAPS] += 1
+        stats[S_SWAP_FRAME] = frame0 + n
+        ud[U_SWAP_TAIL] = 2
+        store_release(ud, U_SWAP_DONE, req)
+        return True, njaddr
+    return True, jaddr
 
-    # ---- dry delay line (for bypass, delta and the guard, aligned with the latency) ---------
+
+@nb.njit(**JIT)
+def dry_stage(ud, x, y, n, ch, monitor, guard, swapping, dry, dl, dpos, lat, jaddr, kch):
+    """The dry delay line (aligned with the latency) for bypass, delta and the guard's fade to
+    bypass; then the key monitor."""
     pos = dpos
     bypass = load_relaxed(ud, U_BYPASS)
     gpos = ud[U_GUARD_POS]
@@ -468,19 +344,21 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
         if gpos >= gxf:
             ud[U_GUARD_STATE] = GUARD_BYPASSED
     if monitor == MONITOR_KEY and bypass == 0 and guard != GUARD_BYPASSED:
+        job = carray(int_to_voidptr(jaddr), (JOB_SIZE,), np.int64)
         tr = carray(int_to_voidptr(job[J_TR]), (NTRACE, n, job[J_TRC]), np.float64)
         nk = kch if kch > 0 else ch
         for i in range(n):
             for c in range(ch):
                 y[i, c] = tr[T_KEY, i, c % nk]
 
-    # ---- the last stage ------------------------------------------------------------------------
-    safe = carray(int_to_voidptr(ud[U_SAFE]), (SAFE_SIZE,), np.float64)
-    safety_stage(y, n, ch, safe, load_relaxed(ud, U_MUTE) | load_relaxed(ud, U_STOPPING), stats)
 
-    # ---- output channel map, at the output level (dB in the parameter array, gliding per
-    # sample; attenuation only, so the ceiling holds; meters and the tap read y before it) ----
-    out = carray(outp, (n, nout), np.float32)
+@nb.njit(**JIT)
+def output_stage(ud, y, out, n, nout, jaddr, safe):
+    """The output channel map at the output level: processed channel per device output, or
+    silence. The level is in dB in the running job's parameter array (``P_OUTPUT_LEVEL``) and
+    glides per sample; attenuation only, so the ceiling holds; meters and the tap read ``y``,
+    before it."""
+    job = carray(int_to_voidptr(jaddr), (JOB_SIZE,), np.int64)
     omap = carray(int_to_voidptr(ud[U_OUT_MAP]), (nout,), np.int64)
     lv_db = carray(int_to_voidptr(job[J_P]), (job[J_PLEN],), np.float64)[P_OUTPUT_LEVEL]
     lt = 10.0 ** (0.05 * min(lv_db, 0.0)) if lv_db > -120.0 else 0.0
@@ -494,7 +372,10 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
             out[i, c] = np.float32(y[i, j] * lv) if j >= 0 else 0.0
     safe[F_LEVEL] = lv
 
-    # ---- meters --------------------------------------------------------------------------------
+
+@nb.njit(**JIT)
+def meter_stage(ud, x, k, y, n, ch, kch, jaddr):
+    """Peaks of input, output and key, and the kernel's largest gain reduction."""
     m = carray(int_to_voidptr(ud[U_METER]), (METER_SIZE,), np.float64)
     for c in range(ch):
         a = 0.0
@@ -515,77 +396,106 @@ def block_body(inp, has_in, outp, n, ud, stats, t0, status):
             if v > a:
                 a = v
         m[M_KEY + c] = a
+    job = carray(int_to_voidptr(jaddr), (JOB_SIZE,), np.int64)
     st = carray(int_to_voidptr(job[J_ST]), (job[J_STR], job[J_STC]), np.float64)
     m[M_GR] = st[S_GR_MAX, 0]
 
-    # ---- tap ring: main in, key in, output (for the recorder and the loudness meters) ------
-    if ud[U_TAP_RING] != 0:
-        hdr = carray(int_to_voidptr(ud[U_TAP_RING]), (RING_HDR,), np.int64)
-        buf = carray(int_to_voidptr(hdr[H_BUF]), (hdr[H_CAP], hdr[H_WIDTH]), np.float32)
-        cap = hdr[H_CAP]
-        head = hdr[H_HEAD]
-        tail = load_acquire(hdr, H_TAIL)
-        if cap - (head - tail) >= n:
-            for i in range(n):
-                jj = (head + i) % cap
-                for c in range(ch):
-                    buf[jj, c] = x[i, c]
-                for c in range(kch):
-                    buf[jj, ch + c] = k[i, c]
-                for c in range(ch):
-                    buf[jj, ch + kch + c] = y[i, c]
-            store_release(hdr, H_HEAD, head + n)
-        else:
-            stats[S_TAP_DROPPED] += 1
 
-    # ---- canary: a test-only switch that overruns the budget on purpose ----------------------
-    every = ud[U_CANARY_EVERY]
-    if every > 0 and (blocks + 1) % every == 0:
-        stats[S_CANARY] += 1
-        _spin_ns(ud[U_CANARY_NS])
-
-    stats[S_BLOCKS] = blocks + 1
-    store_release(stats, S_FRAMES, frame0 + n)
-    return interval, started_late
-
-
-# int cb(const void* input, void* output, unsigned long frameCount,
-#        const PaStreamCallbackTimeInfo* timeInfo, PaStreamCallbackFlags statusFlags,
-#        void* userData)      -- unsigned long is 64-bit on Linux x86-64 (LP64)
-CB_SIG = types.intc(types.voidptr, types.voidptr, types.uint64, types.voidptr, types.uint64,
-                    types.voidptr)
-
-
-@nb.cfunc(CB_SIG, nopython=True, error_model="numpy", cache=True)
-def native_callback(inp_ptr, out_ptr, frames, time_info, status, user):
-    t0 = monotonic_ns()
-    ud = carray(user, (UD_SIZE,), np.int64)
-    stats = carray(int_to_voidptr(ud[U_STATS]), (ud[U_STATS_LEN],), np.int64)
-    n = np.int64(frames)
-    nout = ud[U_NOUT]
-    if n > ud[U_MAXF]:
-        stats[S_TOO_BIG] += 1
-        o = carray(out_ptr, (n, nout), np.float32)
+@nb.njit(**JIT)
+def tap_stage(ud, stats, x, k, y, n, ch, kch):
+    """Main in, key in and output into the tap ring (for the recorder and the loudness
+    meters); a block that does not fit is counted, never waited for."""
+    if ud[U_TAP_RING] == 0:
+        return
+    hdr = carray(int_to_voidptr(ud[U_TAP_RING]), (RING_HDR,), np.int64)
+    buf = carray(int_to_voidptr(hdr[H_BUF]), (hdr[H_CAP], hdr[H_WIDTH]), np.float32)
+    cap = hdr[H_CAP]
+    head = hdr[H_HEAD]
+    tail = load_acquire(hdr, H_TAIL)
+    if cap - (head - tail) >= n:
         for i in range(n):
-            for c in range(nout):
-                o[i, c] = 0.0
-        return 0
-    has_in = voidptr_to_int(inp_ptr) != 0
-    nin = ud[U_NIN]
-    ip = inp_ptr if has_in else int_to_voidptr(ud[U_X])
-    inp = carray(ip, (n, nin if nin > 0 else 1), np.float32)
-    interval, started_late = block_body(inp, has_in, out_ptr, n, ud, stats, t0,
-                                        np.int64(status))
-    el = monotonic_ns() - t0
+            jj = (head + i) % cap
+            for c in range(ch):
+                buf[jj, c] = x[i, c]
+            for c in range(kch):
+                buf[jj, ch + c] = k[i, c]
+            for c in range(ch):
+                buf[jj, ch + kch + c] = y[i, c]
+        store_release(hdr, H_HEAD, head + n)
+    else:
+        stats[S_TAP_DROPPED] += 1
+
+
+@nb.njit(**JIT)
+def block_body(inp, has_in, out, n, ud, stats):
+    """One piece of at most U_MAXF frames: every stage from the parameter handoff to the tap."""
+    ch = ud[U_CH]
+    kch = ud[U_KCH]
+    frame0 = stats[S_FRAMES]
+    take_params(ud, stats, frame0)
+    x = carray(int_to_voidptr(ud[U_X]), (n, ch), np.float32)
+    k = carray(int_to_voidptr(ud[U_K]), (n, kch if kch > 0 else 1), np.float32)
+    y = carray(int_to_voidptr(ud[U_Y]), (n, ch), np.float32)
+    input_stage(inp, has_in, n, ud, stats, x, k, ch, kch)
+    monitor = load_relaxed(ud, U_MONITOR)
+    guard = ud[U_GUARD_STATE]
+    jaddr = kernel_stage(ud, n, monitor, guard)
+    dl = ud[U_DRY_LEN]
+    dry = carray(int_to_voidptr(ud[U_DRY]), (dl, ch), np.float32)
+    dpos = ud[U_DRY_POS]
+    lat = ud[U_LATENCY]
+    if lat >= dl:  # never read outside the dry line (the engine refuses such latencies)
+        lat = dl - 1
+    swapping, jaddr = swap_stage(ud, stats, x, y, n, ch, monitor, guard, dry, dl, dpos, lat,
+                                 frame0, jaddr)
+    ud[U_SWAP_ACTIVE] = 1 if swapping else 0
+    if ud[U_GUARD_STATE] != guard:  # a completed swap cleared the guard
+        guard = ud[U_GUARD_STATE]
+    dry_stage(ud, x, y, n, ch, monitor, guard, swapping, dry, dl, dpos, lat, jaddr, kch)
+    safe = carray(int_to_voidptr(ud[U_SAFE]), (SAFE_SIZE,), np.float64)
+    safety_stage(y, n, ch, safe, load_relaxed(ud, U_MUTE), stats)
+    output_stage(ud, y, out, n, ud[U_NOUT], jaddr, safe)
+    meter_stage(ud, x, k, y, n, ch, kch, jaddr)
+    tap_stage(ud, stats, x, k, y, n, ch, kch)
+    store_release(stats, S_FRAMES, frame0 + n)
+
+
+@nb.njit(**JIT)
+def guard_stage(ud, stats, cpu):
+    """The overrun guard: a kernel over its budget of the callback's own CPU time for
+    U_GUARD_N blocks in a row starts the fade to bypass."""
+    if ud[U_GUARD_ON] != 0 and ud[U_GUARD_STATE] == GUARD_OK:
+        if cpu > ud[U_BUDGET_NS]:
+            ud[U_GUARD_COUNT] += 1
+            if ud[U_GUARD_COUNT] >= ud[U_GUARD_N]:
+                ud[U_GUARD_POS] = 0
+                ud[U_GUARD_STATE] = GUARD_FADING
+                stats[S_GUARD_TRIPS] += 1
+                stats[S_GUARD_EL] = cpu
+        else:
+            ud[U_GUARD_COUNT] = 0
+
+
+@nb.njit(**JIT)
+def account_stage(ud, stats, el, cpu, interval, late, status):
+    """The callback's own figures: elapsed and CPU time, overruns, the swap blocks, the
+    elapsed-time ring."""
     stats[S_EL_LAST] = el
     if el > stats[S_EL_MAX]:
         stats[S_EL_MAX] = el
+    if cpu > stats[S_CPU_MAX]:
+        stats[S_CPU_MAX] = cpu
     period = stats[S_PERIOD_NS]
     over = 1 if (period > 0 and el > period) else 0
-    if over and not started_late:  # a block that started late was counted already: count once
+    if over and not late:  # a block that started late was counted already: count once
         stats[S_LATE] += 1
     stats[S_LAST_OVERRUN] = over
-    # ---- the blocks of a live swap (and the two after it, whose flags describe it) -----------
+    if over:
+        ud[U_CYCLE_OVER] = 1
+    if status != 0:
+        stats[S_FLAGGED] += 1
+        stats[S_FLAGS_OR] |= status
+    # the blocks of a live swap (and the two after it, whose flags describe it)
     if ud[U_SWAP_ACTIVE] != 0 or ud[U_SWAP_TAIL] > 0:
         if ud[U_SWAP_ACTIVE] == 0:
             ud[U_SWAP_TAIL] -= 1
@@ -594,23 +504,63 @@ def native_callback(inp_ptr, out_ptr, frames, time_info, status, user):
             stats[S_SWAP_EL_MAX] = el
         if status != 0:
             stats[S_SWAP_FLAGGED] += 1
-        if over or started_late:
+        if over or late:
             stats[S_SWAP_LATE] += 1
-    # ---- overrun guard: a user kernel over budget for several blocks in a row --------------
-    if ud[U_GUARD_ON] != 0 and ud[U_GUARD_STATE] == GUARD_OK:
-        if el > ud[U_BUDGET_NS]:
-            ud[U_GUARD_COUNT] += 1
-            if ud[U_GUARD_COUNT] >= ud[U_GUARD_N]:
-                ud[U_GUARD_POS] = 0
-                ud[U_GUARD_STATE] = GUARD_FADING
-                stats[S_GUARD_TRIPS] += 1
-                stats[S_GUARD_EL] = el
-        else:
-            ud[U_GUARD_COUNT] = 0
     rl = ud[U_RINGLEN]
     rng = carray(int_to_voidptr(ud[U_ELRING]), (rl, 3), np.int64)
-    b = (stats[S_BLOCKS] - 1) % rl
+    b = stats[S_BLOCKS] % rl
     rng[b, 0] = el
     rng[b, 1] = interval
-    rng[b, 2] = np.int64(status) | (ud[U_SWAP_ACTIVE] << SWAP_BIT)
+    rng[b, 2] = status | (ud[U_SWAP_ACTIVE] << SWAP_BIT) | \
+        ((1 if (over or late) else 0) << LATE_BIT)
+    stats[S_BLOCKS] += 1
+
+
+# int cb(const void* input, void* output, unsigned long frameCount,
+#        const PaStreamCallbackTimeInfo* timeInfo, PaStreamCallbackFlags statusFlags,
+#        void* userData)      -- unsigned long: 64-bit on the LP64 platforms the engine accepts
+#                                (livedyn.engine.intrinsics refuses the others at import)
+CB_SIG = types.intc(types.voidptr, types.voidptr, types.uint64, types.voidptr, types.uint64,
+                    types.voidptr)
+
+
+@nb.cfunc(CB_SIG, nopython=True, error_model="numpy", cache=True)
+def native_callback(inp_ptr, out_ptr, frames, time_info, status, user):
+    t0 = monotonic_ns()
+    ud = carray(user, (UD_SIZE,), np.int64)
+    # the guard's clock is a real system call on Linux (not the vDSO): read only when it is on
+    guarded = ud[U_GUARD_ON] != 0
+    c0 = thread_cpu_ns() if guarded else 0
+    stats = carray(int_to_voidptr(ud[U_STATS]), (STATS_SIZE,), np.int64)
+    n = np.int64(frames)
+    nout = ud[U_NOUT]
+    nin = ud[U_NIN]
+    w_in = nin if nin > 0 else 1
+    maxf = ud[U_MAXF]
+    interval, late = timing_stage(ud, stats, t0)
+    has_in = voidptr_to_int(inp_ptr) != 0
+    if n > maxf:  # more than the arrays hold: processed in pieces, counted
+        stats[S_TOO_BIG] += 1
+    off = 0
+    while off < n:
+        m = n - off if n - off < maxf else maxf
+        if has_in:
+            inp = carray(int_to_voidptr(voidptr_to_int(inp_ptr) + 4 * off * nin), (m, w_in),
+                         np.float32)
+        else:  # no input buffer: never read (has_in is False); any array of the right type
+            inp = carray(int_to_voidptr(ud[U_X]), (1, 1), np.float32)
+        out = carray(int_to_voidptr(voidptr_to_int(out_ptr) + 4 * off * nout), (m, nout),
+                     np.float32)
+        block_body(inp, has_in, out, m, ud, stats)
+        off += m
+    # the canary: a test-only switch that overruns the budget on purpose
+    every = ud[U_CANARY_EVERY]
+    if every > 0 and (stats[S_BLOCKS] + 1) % every == 0:
+        stats[S_CANARY] += 1
+        _spin_ns(ud[U_CANARY_NS])
+    cpu = thread_cpu_ns() - c0 if guarded else 0
+    guard_stage(ud, stats, cpu)
+    el = monotonic_ns() - t0
+    account_stage(ud, stats, el, cpu, interval, late, np.int64(status))
+    ud[U_T_END] = monotonic_ns()
     return 0  # paContinue

@@ -1,15 +1,18 @@
 """Engine: a Processor running live inside a PortAudio stream, and its control surface.
 
-``Engine(...)``, ``start()``, ``set(name, value)``, ``snapshot()``, ``load_preset()``,
-``bypass()``, ``mute()``, ``monitor()``, ``stop()`` may be called from any thread: parameter
-changes go through a sequence lock that the native callback reads once per block, and every
-other control is one aligned int64 store.
+``Engine(...)``, ``start()``, ``set(name, value)``, ``set_many(values)``, ``snapshot()``,
+``load_preset()``, ``bypass()``, ``mute()``, ``monitor()``, ``stop()`` may be called from any
+thread: parameter changes go through a sequence lock that the native callback reads once per
+block (a whole preset in one publication), and every other control is one aligned int64 store.
+The stream owns the memory the callback touches; every way of stopping (``stop()``, a dropped
+Engine, a dead server) stops and closes the stream before any of it can be freed.
 """
 from __future__ import annotations
 
 import math
 import threading
 import time
+import weakref
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -39,6 +42,45 @@ def _job_function(alg):
     if alg.kind == "user":
         return alg.user_job
     return cb.job_limiter if alg.kind == "limiter" else cb.job_dynamics
+
+
+class _Memory:
+    """Everything the callback may touch (arrays, the processors of both kernel slots and their
+    compiled code): owned by the stream while it is open, so nothing is freed under it."""
+
+    def __init__(self):
+        self.arrays = []
+        self.slots = None  # the list of each kernel slot's processor (mutated in place)
+        self.retired = None  # processors a swap let go of, kept until the next swap
+        self.extra = None
+
+
+class _Recording:
+    """The open WAV writers of a run: written by the tap thread, closed by it when it ends."""
+
+    def __init__(self):
+        self.writers = None
+        self.lock = threading.Lock()
+
+    def close(self):
+        with self.lock:
+            writers, self.writers = self.writers, None
+        for w in (writers or {}).values():
+            w.close()
+
+
+def _abandon_engine(stream, stop_evt, rec, threads):
+    """Finaliser of an Engine dropped without stop(): stop and close its stream first, then let
+    its helper threads end (the tap thread closes the recordings)."""
+    if stream is not None:
+        stream.shutdown(timeout=1.0)
+    stop_evt.set()
+    me = threading.current_thread()
+    for t in threads:
+        if t is not me:
+            t.join(timeout=2.0)
+    if not any(t is me for t in threads):
+        rec.close()
 
 
 class EngineError(RuntimeError):
@@ -153,13 +195,28 @@ class Engine:
                  fade_in_ms=500.0, fade_out_ms=50.0, mute_ms=5.0, max_frames=8192,
                  monitor="out", meters=True, instances=1, realtime=True,
                  output_level_db=0.0):
-        self.proc = processor
-        processor.p[P_OUTPUT_LEVEL] = OUTPUT_LEVEL.check(output_level_db)
         self.realtime = bool(realtime)
         self._memory = (False, "memory not locked (real time not asked)")
         self._rt_finder = rt.ThreadFinder()
+        processor.p[P_OUTPUT_LEVEL] = OUTPUT_LEVEL.check(output_level_db)
+        self._settings(processor, blocksize, max_frames, main_source, key_source, record_dir)
+        self._route(device, input_device, output_device, main_inputs, key_inputs, outputs)
+        self._allocate(processor, ceiling_db, fade_in_ms, fade_out_ms, mute_ms)
+        self._fill_user_data(processor, monitor)
+        self._add_instances(processor, instances)
+        self._control_state(processor, meters)
+        self._warm_callback()
+
+    # ---- construction, one concern each ------------------------------------------------------
+    def _settings(self, processor, blocksize, max_frames, main_source, key_source, record_dir):
+        """What the engine runs and at which size; sources checked against the processor."""
+        self.proc = processor
         self.fs = processor.samplerate
         self.blocksize = int(blocksize)
+        self.maxf = int(max_frames)
+        if not 1 <= self.blocksize <= self.maxf:
+            raise ValueError(f"blocksize {self.blocksize}: expected 1 to {self.maxf} frames "
+                             "(the engine's max_frames)")
         self.ch = processor.channels
         self.kch = processor.key_channels
         self.main_source = main_source
@@ -175,7 +232,9 @@ class Engine:
             raise DeviceError(f"key source has {key_source.channels} channels, expected "
                               f"{self.kch}")
 
-        # ---- devices and routing (checked before anything opens) ---------------------------
+    def _route(self, device, input_device, output_device, main_inputs, key_inputs, outputs):
+        """Devices and channel routing, checked before anything opens."""
+        main_source, key_source = self.main_source, self.key_source
         in_dev = find_device(input_device if input_device is not None else device, "input")
         out_dev = find_device(output_device if output_device is not None else device, "output")
         from .stream import list_devices
@@ -212,11 +271,15 @@ class Engine:
         for i, c in enumerate(outs):
             omap[c] = i % self.ch
         self.routing = Routing(main, key, list(omap))
+        self.out_map = omap
         self._devices = (in_dev, out_dev)
 
-        # ---- every array the callback touches --------------------------------------------------
-        maxf = int(max_frames)
-        self.maxf = maxf
+    def _allocate(self, processor, ceiling_db, fade_in_ms, fade_out_ms, mute_ms):
+        """Every array the callback touches, allocated once."""
+        main_source, key_source = self.main_source, self.key_source
+        main, key = self.routing.main, self.routing.key
+        omap = self.out_map
+        maxf = self.maxf
         self.ud = np.zeros(cb.UD_SIZE, np.int64)
         self.stats = np.zeros(cb.STATS_SIZE, np.int64)
         self.x = np.zeros((maxf, self.ch), np.float32)
@@ -226,7 +289,10 @@ class Engine:
         self.key_map = np.array((key if key_source is None else [-1] * self.kch) or [-1],
                                 np.int64)
         self.out_map = omap
+        # the control side's values (staged privately), and the array the callback copies from,
+        # written only inside the sequence lock's odd window (publish_params)
         self.pend = processor.p.copy()
+        self.shared = processor.p.copy()
         self.ptmp = processor.p.copy()
         self.safe = np.zeros(cb.SAFE_SIZE, np.float64)
         self.safe[cb.F_GAIN] = 0.0
@@ -250,7 +316,8 @@ class Engine:
         # slot not in use and the callback switches to it
         self.jobs = [self.ud[cb.U_JOB:cb.U_JOB + cb.JOB_SIZE], np.zeros(cb.JOB_SIZE, np.int64)]
         self._slot_owner = [processor, None]  # keeps each slot's processor (and code) alive
-        self._retired = None
+        self._swap_number = 0  # request numbers of live swaps (0: none pending)
+        self._cancelled_at = None  # the block count when a swap was last cancelled
         self.swap_log = []  # one dict per completed swap
         rf = int(RING_SECONDS * self.fs)
         self.main_ring = _ring(rf, self.ch) if main_source is not None else None
@@ -258,10 +325,13 @@ class Engine:
         self.tap_width = 2 * self.ch + self.kch
         self.tap_ring = _ring(int(TAP_SECONDS * self.fs), self.tap_width)
 
+    def _fill_user_data(self, processor, monitor):
+        """The user-data block: the address and size of every array, the kernel slot 0 job."""
+        maxf = self.maxf
         kernel = _job_function(processor.algorithm)
         self._kernel_cfunc = kernel
         ud = self.ud
-        ud[cb.U_STATS], ud[cb.U_STATS_LEN] = self.stats.ctypes.data, cb.STATS_SIZE
+        ud[cb.U_STATS] = self.stats.ctypes.data
         ud[cb.U_NIN], ud[cb.U_NOUT] = self.n_in, self.n_out
         ud[cb.U_CH], ud[cb.U_KCH] = self.ch, self.kch
         ud[cb.U_X], ud[cb.U_K], ud[cb.U_Y] = (self.x.ctypes.data, self.k.ctypes.data,
@@ -273,14 +343,14 @@ class Engine:
         ud[cb.U_MAIN_RING] = self.main_ring[0].ctypes.data if self.main_ring else 0
         ud[cb.U_KEY_RING] = self.key_ring[0].ctypes.data if self.key_ring else 0
         ud[cb.U_TAP_RING] = self.tap_ring[0].ctypes.data
-        ud[cb.U_PPEND], ud[cb.U_PTMP] = self.pend.ctypes.data, self.ptmp.ctypes.data
+        ud[cb.U_PPEND], ud[cb.U_PTMP] = self.shared.ctypes.data, self.ptmp.ctypes.data
         ud[cb.U_KTABLE], ud[cb.U_NKSLOT] = self.table.ctypes.data, self.table.shape[0]
         ud[cb.U_KSLOT] = 0
         ud[cb.U_MONITOR] = {"out": 0, "key": 1, "delta": 2}[monitor]
         ud[cb.U_SAFE] = self.safe.ctypes.data
-        ud[cb.U_DRY], ud[cb.U_DRY_LEN] = self.dry.ctypes.data, dry_len
+        ud[cb.U_DRY], ud[cb.U_DRY_LEN] = self.dry.ctypes.data, self.dry.shape[0]
         ud[cb.U_LATENCY] = processor.latency_samples
-        ud[cb.U_METER], ud[cb.U_METER_LEN] = self.meter.ctypes.data, cb.METER_SIZE
+        ud[cb.U_METER] = self.meter.ctypes.data
         ud[cb.U_ELRING], ud[cb.U_RINGLEN] = self.elring.ctypes.data, ELRING
         ud[cb.U_SEQLOG], ud[cb.U_SEQLOG_LEN] = self.seqlog.ctypes.data, SEQLOG
         job = self.jobs[0]
@@ -293,8 +363,12 @@ class Engine:
         ud[cb.U_GUARD_ON] = 1 if processor.algorithm.source is not None else 0
         ud[cb.U_GUARD_N] = GUARD_BLOCKS
         ud[cb.U_GUARD_XF] = max(1, int(round(GUARD_XFADE_MS * self.fs / 1000)))
-        ud[cb.U_BUDGET_NS] = int(round(1e9 * self.blocksize / self.fs))
-        # extra instances (same settings, own state, output discarded) to measure headroom
+        ud[cb.U_BUDGET_NS] = int(round(1e9 * self.blocksize / self.fs))  # of CPU time
+        ud[cb.U_BLOCKSIZE] = self.blocksize
+
+    def _add_instances(self, processor, instances):
+        """Extra instances (same settings, own state, output discarded) to measure headroom."""
+        maxf, ud, job, kernel = self.maxf, self.ud, self.jobs[0], self._kernel_cfunc
         self._extra = []
         self.extra_table = np.zeros((max(int(instances) - 1, 1), 2), np.int64)
         self.y_extra = np.zeros((maxf, self.ch), np.float32)
@@ -315,6 +389,9 @@ class Engine:
         ud[cb.U_NEXTRA] = len(self._extra)
         self.stats[cb.S_PERIOD_NS] = int(round(1e9 * self.blocksize / self.fs))
 
+    def _control_state(self, processor, meters):
+        """The control side's own state: meters, recent input, change and notice logs, and
+        the memory the stream will own."""
         self.meters_in = MeterSet(self.fs, self.ch) if meters else None
         self.meters_out = MeterSet(self.fs, self.ch) if meters else None
         self._snapshot_meters = {}
@@ -331,8 +408,14 @@ class Engine:
         self._threads = []
         self._stop_evt = threading.Event()
         self.stream = None
-        self._writers = None
-        self._warm_callback()
+        self._rec = _Recording()
+        self._recording = False  # recordings were opened (the automation is written on stop)
+        self._finalizer = None
+        self._mem = _Memory()
+        self._mem.arrays = [a for a in vars(self).values() if isinstance(a, np.ndarray)] + \
+            [self.jobs, self.main_ring, self.key_ring, self.tap_ring]
+        self._mem.slots = self._slot_owner
+        self._mem.extra = self._extra
 
     @property
     def job(self):
@@ -352,7 +435,6 @@ class Engine:
         job[cb.J_ST], job[cb.J_STR], job[cb.J_STC] = st.ctypes.data, *st.shape
         job[cb.J_RING], job[cb.J_RINGR], job[cb.J_RINGC] = ring.ctypes.data, *ring.shape
         job[cb.J_TR], job[cb.J_TRN], job[cb.J_TRC] = self.trace.ctypes.data, 0, st.shape[1]
-        job[cb.J_CALLS] = 0
 
     # ---- life cycle ---------------------------------------------------------------------------
     def _warm_callback(self):
@@ -391,14 +473,21 @@ class Engine:
         # open (and so check rate and channels) before any recording file is created
         self.stream = NativeStream(cb.native_callback.address, self.ud.ctypes.data,
                                    self._devices[0], self._devices[1], self.n_in, self.n_out,
-                                   self.fs, self.blocksize, realtime=self.realtime)
+                                   self.fs, self.blocksize, realtime=self.realtime, keep=self._mem)
+        # an Engine dropped without stop(): its stream is stopped and closed before its arrays
+        # can go (the helper threads hold the Engine only weakly)
+        self._finalizer = weakref.finalize(self, _abandon_engine, self.stream, self._stop_evt,
+                                           self._rec, self._threads)
         if self.record_dir is not None:
             self._open_writers()
         self.t_start = time.monotonic()
         self.stream.start()
         self._rt_finder.begin(self.stats[cb.S_BLOCKS])
-        for target in (self._feeder_loop, self._tap_loop):
-            t = threading.Thread(target=target, daemon=True)
+        me = weakref.ref(self)
+        for target, args in ((_feeder_loop, (me, self._stop_evt)),
+                             (_tap_loop, (me, self._stop_evt, self._rec))):
+            t = threading.Thread(target=target, args=args, daemon=True,
+                                 name=f"livedyn-{target.__name__.strip('_')}")
             t.start()
             self._threads.append(t)
         return self
@@ -419,15 +508,11 @@ class Engine:
             if not until_full and moved >= chunk * 4:
                 return moved
 
-    def _feeder_loop(self):
-        ended = {id(self.main_source): False, id(self.key_source): False}
-        while not self._stop_evt.is_set():
-            for src, ring in ((self.main_source, self.main_ring),
-                              (self.key_source, self.key_ring)):
-                if src is not None and not ended[id(src)]:
-                    if self._feed(src, ring) == -1:
-                        ended[id(src)] = True
-            self._stop_evt.wait(0.01)
+    def _feed_sources(self, ended):
+        for src, ring in ((self.main_source, self.main_ring), (self.key_source, self.key_ring)):
+            if src is not None and not ended.get(id(src)):
+                if self._feed(src, ring) == -1:
+                    ended[id(src)] = True
 
     @property
     def source_finished(self):
@@ -435,16 +520,6 @@ class Engine:
         if self.main_source is None:
             return False
         return self.main_source.finished and cb.ring_fill(self.main_ring[0]) == 0
-
-    def _tap_loop(self):
-        hdr, _ = self.tap_ring
-        chunk = np.zeros((int(0.1 * self.fs) + self.maxf, self.tap_width), np.float32)
-        while not self._stop_evt.is_set():
-            self._drain_tap(hdr, chunk)
-            self._resolve_changes()
-            self._stop_evt.wait(0.02)
-        self._drain_tap(hdr, chunk)
-        self._resolve_changes()
 
     def _drain_tap(self, hdr, chunk):
         while True:
@@ -461,11 +536,12 @@ class Engine:
                 self.meters_out.process(yout)
                 self._snapshot_meters = {"in": self.meters_in.snapshot(),
                                          "out": self.meters_out.snapshot()}
-            if self._writers is not None:
-                self._writers["main"].write(xin)
+            writers = self._rec.writers
+            if writers is not None:
+                writers["main"].write(xin)
                 if self.kch:
-                    self._writers["key"].write(key)
-                self._writers["out"].write(yout)
+                    writers["key"].write(key)
+                writers["out"].write(yout)
 
     def _remember(self, blk):
         buf = self._recent
@@ -494,38 +570,51 @@ class Engine:
 
         self.record_dir.mkdir(parents=True, exist_ok=True)
         fs = int(self.fs)
-        self._writers = {"main": WavWriter(self.record_dir / "main.wav", fs, self.ch),
-                         "out": WavWriter(self.record_dir / "out.wav", fs, self.ch)}
+        writers = {"main": WavWriter(self.record_dir / "main.wav", fs, self.ch),
+                   "out": WavWriter(self.record_dir / "out.wav", fs, self.ch)}
         if self.kch:
-            self._writers["key"] = WavWriter(self.record_dir / "key.wav", fs, self.kch)
+            writers["key"] = WavWriter(self.record_dir / "key.wav", fs, self.kch)
+        self._rec.writers = writers
+        self._recording = True
 
-    def stop(self, timeout=2.0):
-        """Fade out, stop the stream and the threads, close recordings. Idempotent."""
+    def stop(self, timeout=2.0, stream_timeout=None):
+        """Fade out, stop and close the stream, end the helper threads, close the recordings
+        and write the automation. Idempotent.
+
+        The stream is always stopped and closed before anything it touches is let go; after a
+        dead server or device, whose stop never returns, the stream is abandoned with its
+        memory (see :meth:`NativeStream.shutdown`) and the rest proceeds. ``stream_timeout``:
+        how long to wait for PortAudio's stop (default 5 s, 0.5 s once ``error`` is set; 0 when
+        the caller knows that the server is gone)."""
         with self._lock:
             if self._closed:
                 return
             self._closed = True
-        if self.stream is not None and self.error is None:
-            self.safe[cb.F_FADE_STEP] = self._fade_out_step
-            self.safe[cb.F_TARGET] = 0.0
-            t_end = time.monotonic() + timeout
-            while self.safe[cb.F_GAIN] > 0.0 and time.monotonic() < t_end and self.alive():
-                time.sleep(0.005)
-            time.sleep(2 * self.blocksize / self.fs)
+        if self.stream is not None:
+            if self.error is None:
+                self.safe[cb.F_FADE_STEP] = self._fade_out_step
+                self.safe[cb.F_TARGET] = 0.0
+                t_end = time.monotonic() + timeout
+                while self.safe[cb.F_GAIN] > 0.0 and time.monotonic() < t_end and self.alive():
+                    time.sleep(0.005)
+                time.sleep(2 * self.blocksize / self.fs)
+            if stream_timeout is None:
+                stream_timeout = 5.0 if self.error is None else 0.5
+            self.stream.shutdown(timeout=stream_timeout)
+        # no block runs any more (or ever will): the tap thread drains what is left, closes
+        # the recordings and ends
         self._stop_evt.set()
         for t in self._threads:
-            t.join(timeout=timeout)
-        if self.stream is not None and self.error is None:
-            self.stream.stop()
-            self.stream.close()
+            t.join(timeout=max(timeout, 5.0))
         for src in (self.main_source, self.key_source):
             if src is not None:
                 src.close()
-        if self._writers is not None:
-            for w in self._writers.values():
-                w.close()
-            self._writers = None
+        if not any(t.is_alive() for t in self._threads):
+            self._rec.close()
+        if self._recording:
             self._write_automation()
+        if self._finalizer is not None:
+            self._finalizer.detach()
 
     def alive(self):
         """False when the stream has stopped delivering blocks (a dead server, say)."""
@@ -549,15 +638,25 @@ class Engine:
     # ---- control surface ----------------------------------------------------------------------
     def set(self, name, value):
         """Set a parameter; it reaches the callback at its next block. Returns the sequence."""
+        return self.set_many({name: value})
+
+    def set_many(self, values):
+        """Set several parameters at once (a whole preset, say): the callback takes all of them
+        at the same block, or none. Nothing changes when one value is refused. Returns the
+        sequence number of the publication."""
         with self._lock:
-            if name == OUTPUT_LEVEL.name:  # the engine's own, not the algorithm's
-                self.pend[P_OUTPUT_LEVEL] = OUTPUT_LEVEL.parse(value)
-                return int(cb.publish_params(self.ud, self.pend))
-            prm, v = self.proc.validate(name, value, self.pend)
-            self.pend[prm.slot] = v
+            trial = self.pend.copy()
+            parsed = []
+            values = dict(values)
+            if OUTPUT_LEVEL.name in values:  # the engine's own, not the algorithm's
+                trial[P_OUTPUT_LEVEL] = OUTPUT_LEVEL.parse(values.pop(OUTPUT_LEVEL.name))
+            if values:
+                trial, parsed = self.proc.validate_many(values, trial)
+            self.pend[:] = trial  # the private stage; the callback never reads it
             seq = int(cb.publish_params(self.ud, self.pend))
-            self._changes.append((seq, prm.name, v))
-            if prm.name in ("lookahead", "true_peak"):
+            for prm, v in parsed:
+                self._changes.append((seq, prm.name, v))
+            if any(prm.name in ("lookahead", "true_peak") for prm, _ in parsed):
                 self.ud[cb.U_LATENCY] = self.proc.latency_for(self.pend)  # reads pend only
             return seq
 
@@ -590,13 +689,9 @@ class Engine:
         elif pr.algorithm != self.proc.algorithm.name:
             raise ParamError(f"{name_or_path}: a {pr.algorithm} preset, but this engine runs "
                              f"the {self.proc.algorithm.name}")
-        trial = self.pend.copy()
         for n, v in pr.values.items():
-            trial[self.proc.schema[n].slot] = self.proc.schema[n].check(v)
-        self.proc.check_combination(trial)
-        for n, v in pr.values.items():
-            if self.pend[self.proc.schema[n].slot] != v:
-                self.set(n, v)
+            self.proc.schema[n].check(v)
+        self.set_many(pr.values)  # one publication: the callback never hears half a preset
         return pr
 
     # ---- live swap ----------------------------------------------------------------------------
@@ -619,8 +714,13 @@ class Engine:
         with self._lock:
             if self.stream is None or self.error is not None:
                 raise EngineError("swap: the stream is not running")
-            if int(self.ud[cb.U_SWAP_REQ]) != int(self.ud[cb.U_SWAP_DONE]):
+            if int(self.ud[cb.U_SWAP_REQ]) != 0:
                 raise EngineError("swap: the previous swap has not finished")
+            if self._cancelled_at is not None and \
+                    int(self.stats[cb.S_BLOCKS]) < self._cancelled_at + 2:
+                # a block that began before the cancellation may still run the incoming slot
+                raise EngineError("swap: the stream has not run since the last swap was "
+                                  "cancelled; try again when it plays")
             t0 = time.monotonic()
             old = self.proc
             new = Processor(alg, self.fs, self.ch, self.kch)
@@ -653,25 +753,37 @@ class Engine:
             self.ud[cb.U_SWAP_POS] = 0
             self.ud[cb.U_SWAP_LAT] = lat
             blocks0 = int(self.stats[cb.S_SWAP_BLOCKS])
-            req = int(self.ud[cb.U_SWAP_REQ]) + 1
+            self._swap_number += 1
+            req = self._swap_number
             cb.publish_swap(self.ud, req)
-            # Once asked, the callback finishes the swap whatever happens here, so this waits for
-            # its echo for as long as the stream runs: giving up earlier would leave the engine
-            # and the callback running different versions.
+            # The callback completes the swap with a compare-and-swap of U_SWAP_REQ to 0; a
+            # stalled stream makes this side withdraw the request with its own. One of the two
+            # wins, so the engine and the callback never describe different versions.
             frames, t_frames = int(self.stats[cb.S_FRAMES]), time.monotonic()
+            t_won = None  # when the callback was seen to have won the race to complete
             while int(self.ud[cb.U_SWAP_DONE]) != req:
                 now = time.monotonic()
                 f = int(self.stats[cb.S_FRAMES])
                 if f != frames:
                     frames, t_frames = f, now
+                elif t_won is not None:
+                    if now - t_won > 1.0:  # completed, and the echo a few stores away
+                        break
                 elif now - t_frames > stall_seconds or not self.alive():
-                    self._retired = (old, new)  # no callback runs: keep both, change nothing
-                    raise EngineError(f"swap: the stream stopped (no block for "
-                                      f"{now - t_frames:.1f} s) before the switch")
+                    if cb.cancel_swap(self.ud, req):
+                        # withdrawn: the callback never completes it. A block running now may
+                        # still read the incoming slot, so both processors stay alive
+                        self._mem.retired = (old, new)
+                        self._slot_owner[nxt] = new
+                        self._cancelled_at = int(self.stats[cb.S_BLOCKS])
+                        raise EngineError(f"swap: the stream stopped (no block for "
+                                          f"{now - t_frames:.1f} s) before the switch; the "
+                                          "swap is cancelled and the running version stays")
+                    t_won = now
                 time.sleep(0.001)
             # the callback now runs the new version only: the old one may go after this
             self.pend[:] = new.p
-            self._retired = old
+            self._mem.retired = old
             self._slot_owner[cur] = None
             self.ud[cb.U_GUARD_ON] = 1 if alg.source is not None else 0
             self._schemas.append(new.schema)
@@ -765,6 +877,10 @@ class Engine:
             "underruns_main": int(s[cb.S_UNDER_MAIN]), "underruns_key": int(s[cb.S_UNDER_KEY]),
             "tap_dropped_blocks": int(s[cb.S_TAP_DROPPED]),
             "nonfinite_blocks": int(s[cb.S_NONFINITE_BLOCKS]),
+            "oversized_callbacks": int(s[cb.S_TOO_BIG]),
+            "host_period_frames": int(s[cb.S_HOST_FRAMES]) or None,
+            # the callback's own CPU time, read only while the overrun guard is on
+            "callback_cpu_max": float(s[cb.S_CPU_MAX]) / period_ns if s[cb.S_CPU_MAX] else None,
             "param_seq": int(s[cb.S_PARAM_SEQ]), "param_frame": int(s[cb.S_PARAM_FRAME]),
             "peak_in_dbfs": [_db(v) for v in m[cb.M_IN:cb.M_IN + self.ch]],
             "peak_out_dbfs": [_db(v) for v in m[cb.M_OUT:cb.M_OUT + self.ch]],
@@ -863,6 +979,40 @@ class Engine:
             write_text_atomic(self.record_dir / "versions.txt",
                               "# FRAME ALGORITHM (file or name) CONTENT HASH\n"
                               + "\n".join(lines) + "\n")
+
+
+def _feeder_loop(engine_ref, stop_evt):
+    """Keep the file/array sources' rings full; holds the Engine only weakly."""
+    ended = {}
+    while not stop_evt.is_set():
+        eng = engine_ref()
+        if eng is None:
+            return
+        eng._feed_sources(ended)
+        del eng
+        stop_evt.wait(0.01)
+
+
+def _tap_loop(engine_ref, stop_evt, rec):
+    """Drain the tap ring into the meters and the recordings until stopped, then once more
+    (the stream is closed by then, so nothing is left behind); closes the recordings."""
+    chunk = None
+    try:
+        while True:
+            eng = engine_ref()
+            if eng is None:
+                return
+            if chunk is None:
+                chunk = np.zeros((int(0.1 * eng.fs) + eng.maxf, eng.tap_width), np.float32)
+            last = stop_evt.is_set()
+            eng._drain_tap(eng.tap_ring[0], chunk)
+            eng._resolve_changes()
+            del eng
+            if last:
+                return
+            stop_evt.wait(0.02)
+    finally:
+        rec.close()
 
 
 def realtime_threads():

@@ -6,6 +6,18 @@ Python function, which needs the interpreter lock).
 """
 from __future__ import annotations
 
+import threading
+
+# Streams whose stop did not return (their server or device died): they and every array their
+# callback may touch stay alive for the rest of the process, which should leave with os._exit
+# (PortAudio cannot be terminated once a JACK server is gone under it).
+_ABANDONED = []
+
+
+def abandoned():
+    """Streams that could not be stopped, kept alive with their arrays (see ``shutdown``)."""
+    return list(_ABANDONED)
+
 
 class DeviceError(ValueError):
     """A device, rate or channel request that cannot be met; one line for the user."""
@@ -77,10 +89,18 @@ def find_device(spec, kind):
 
 
 class NativeStream:
-    """A PortAudio duplex stream driven by a native callback address."""
+    """A PortAudio duplex stream driven by a native callback address.
+
+    ``keep`` is whatever holds the memory the callback touches (the user-data block and every
+    array it points to): the stream owns it until the stream is closed, so that no array can be
+    freed while a callback may run, whoever drops their references first.
+    """
 
     def __init__(self, callback_address, user_address, in_device, out_device, in_channels,
-                 out_channels, samplerate, blocksize, realtime=True):
+                 out_channels, samplerate, blocksize, realtime=True, keep=None):
+        self.keep = keep
+        self.ptr = None
+        self.state = "open"  # open, started, closed or abandoned
         sd = _sd()
         self._sd = sd
         ffi, lib = sd._ffi, sd._lib
@@ -141,14 +161,48 @@ class NativeStream:
         err = self._lib.Pa_StartStream(self.ptr)
         if err < 0:
             raise DeviceError(f"cannot start the stream: {self._text(err)}")
+        self.state = "started"
 
     def active(self):
-        return self._lib.Pa_IsStreamActive(self.ptr) == 1
+        return self.ptr is not None and self._lib.Pa_IsStreamActive(self.ptr) == 1
 
     def stop(self):
-        self._lib.Pa_StopStream(self.ptr)
+        if self.ptr is not None:
+            self._lib.Pa_StopStream(self.ptr)
 
     def close(self):
         if self.ptr is not None:
             self._lib.Pa_CloseStream(self.ptr)
             self.ptr = None
+            self.state = "closed"
+            self.keep = None
+
+    def shutdown(self, timeout=3.0):
+        """Stop and close the stream; only then let go of the callback's memory.
+
+        After its server or device died, PortAudio's stop and close calls may never return:
+        they run in a helper thread, and when they have not returned within ``timeout`` the
+        stream is *abandoned* (kept, with its memory, for the life of the process; see
+        :func:`abandoned`). Returns True when the stream was closed. Idempotent."""
+        if self.state in ("closed", "abandoned"):
+            return self.state == "closed"
+        if self.ptr is None:
+            self.state, self.keep = "closed", None
+            return True
+        done = threading.Event()
+
+        def work():
+            self._lib.Pa_StopStream(self.ptr)
+            self._lib.Pa_CloseStream(self.ptr)
+            done.set()
+
+        t = threading.Thread(target=work, name="livedyn-stream-stop", daemon=True)
+        t.start()
+        if done.wait(timeout):
+            t.join()
+            self.ptr = None
+            self.state, self.keep = "closed", None
+            return True
+        self.state = "abandoned"
+        _ABANDONED.append(self)
+        return False
