@@ -557,8 +557,10 @@ def _cmd_run(args):
         controls = Controls(eng).start()
     try:
         if interactive:
-            session.run_console(seconds, until_source_ends=until_end, refresh_hz=args.ui_refresh,
-                                controls=controls)
+            from .console import run_console
+
+            session.run_console(run_console, seconds, until_source_ends=until_end,
+                                refresh_hz=args.ui_refresh, controls=controls)
         else:
             session.run_status_lines(seconds, until_source_ends=until_end)
     finally:

@@ -193,10 +193,12 @@ class LiveSession:
             self.out(f"stopping ({signal.Signals(self.signal_received).name})", flush=True)
         return why
 
-    def run_console(self, seconds=None, until_source_ends=False, refresh_hz=20, title=None,
-                    controls=None):
-        """The full-screen console until the user quits (or the time is up, or a signal)."""
-        from ..console import run_console
+    def run_console(self, run_console, seconds=None, until_source_ends=False, refresh_hz=20,
+                    title=None, controls=None):
+        """The full-screen console until the user quits (or the time is up, or a signal).
+
+        ``run_console`` is :func:`livedyn.console.run_console`, handed in by the caller: the
+        console sits above the engine, so the session does not import it."""
 
         def check():
             if self.server is not None and not self.server.alive():
