@@ -11,6 +11,9 @@ import sys
 from pathlib import Path
 
 EXIT_USAGE = 2
+#: A run that played to its end but could not write all it should (disk full, ...): what was
+#: written is kept and readable.
+EXIT_INCOMPLETE = 4
 
 CAUTION = ("Caution: live monitoring can be loud. Start with the monitor level down, keep "
            "microphones away from loudspeakers (feedback), and follow the venue's rules.")
@@ -451,11 +454,17 @@ def _cmd_run(args):
     if failure:
         eng.error = failure
     eng.stop()
+    if eng.record_error:
+        snap["record_error"] = eng.record_error
+    stats_error = None
     if args.stats_json:
         from .presets import write_text_atomic
 
         snap["realtime_granted"] = bool(server.realtime_granted) if server else None
-        write_text_atomic(args.stats_json, json.dumps(snap, indent=2, default=float) + "\n")
+        try:
+            write_text_atomic(args.stats_json, json.dumps(snap, indent=2, default=float) + "\n")
+        except OSError as e:  # disk full, say: the take and the server still get closed
+            stats_error = f"--stats-json {args.stats_json}: cannot write: {e.strerror or e}"
     if failure:
         print(f"livedyn: error: {failure}", file=sys.stderr, flush=True)
         if server is not None:
@@ -470,6 +479,11 @@ def _cmd_run(args):
           f"{100 * snap['callback_load']['median']:.1f} % / 99.9th "
           f"{100 * snap['callback_load']['p99_9']:.1f} % of the block period"
           + (f"; recorded to {args.record}/" if args.record else ""))
+    for line in (eng.record_error, stats_error):
+        if line:
+            print(f"livedyn: error: {line}", file=sys.stderr, flush=True)
+    if eng.record_error or stats_error:
+        return EXIT_INCOMPLETE
     return 0
 
 

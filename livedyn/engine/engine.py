@@ -316,6 +316,7 @@ class Engine:
         self._stop_evt = threading.Event()
         self.stream = None
         self._writers = None
+        self.record_error = None  # one line once a recording write failed (disk full, ...)
         self._warm_callback()
 
     @property
@@ -441,11 +442,33 @@ class Engine:
                 self.meters_out.process(yout)
                 self._snapshot_meters = {"in": self.meters_in.snapshot(),
                                          "out": self.meters_out.snapshot()}
-            if self._writers is not None:
-                self._writers["main"].write(xin)
-                if self.kch:
-                    self._writers["key"].write(key)
-                self._writers["out"].write(yout)
+            if self._writers is not None and self.record_error is None:
+                self._record(xin, key, yout)
+
+    def _record(self, xin, key, yout):
+        """Append to the take; a failed write (disk full, ...) ends the recording, keeps what
+        was written readable and posts one line, while the stream plays on."""
+        from ..wavio import WavError
+
+        try:
+            self._writers["main"].write(xin)
+            if self.kch:
+                self._writers["key"].write(key)
+            self._writers["out"].write(yout)
+        except WavError as e:
+            self.record_error = f"recording stopped: {e}"
+            self._close_writers()
+            self.notice("error", self.record_error)
+
+    def _close_writers(self):
+        from ..wavio import WavError
+
+        for w in self._writers.values():
+            try:
+                w.close()
+            except WavError as e:
+                if self.record_error is None:
+                    self.record_error = f"recording stopped: {e}"
 
     def _remember(self, blk):
         buf = self._recent
@@ -470,14 +493,20 @@ class Engine:
         return data[:, :self.ch], (data[:, self.ch:] if self.kch else None)
 
     def _open_writers(self):
-        from ..wavio import WavWriter
+        # takes are written under their final names, readable whatever stops the run
+        from ..wavio import TakeWriter
 
         self.record_dir.mkdir(parents=True, exist_ok=True)
         fs = int(self.fs)
-        self._writers = {"main": WavWriter(self.record_dir / "main.wav", fs, self.ch),
-                         "out": WavWriter(self.record_dir / "out.wav", fs, self.ch)}
-        if self.kch:
-            self._writers["key"] = WavWriter(self.record_dir / "key.wav", fs, self.kch)
+        self._writers = {}
+        try:
+            for name, width in (("main", self.ch), ("key", self.kch), ("out", self.ch)):
+                if width:
+                    self._writers[name] = TakeWriter(self.record_dir / f"{name}.wav", fs, width)
+        except BaseException:
+            self._close_writers()
+            self._writers = None
+            raise
 
     def stop(self, timeout=2.0):
         """Fade out, stop the stream and the threads, close recordings. Idempotent."""
@@ -502,10 +531,13 @@ class Engine:
             if src is not None:
                 src.close()
         if self._writers is not None:
-            for w in self._writers.values():
-                w.close()
+            self._close_writers()
             self._writers = None
-            self._write_automation()
+            try:
+                self._write_automation()
+            except (OSError, ValueError) as e:  # disk full: the audio is kept, say what is not
+                self.record_error = self.record_error or (
+                    f"recording: automation not written ({str(e).splitlines()[0]})")
 
     def alive(self):
         """False when the stream has stopped delivering blocks (a dead server, say)."""
