@@ -24,25 +24,45 @@ class CliError(Exception):
 
 
 def _user_errors():
+    from .outputs import OutputError
     from .params import ParamError
     from .wavio import WavError
 
     # OSError: any file-system failure (missing folder, a file where a folder should be, disk
     # full, ...) is the user's to fix and gets the one-line error too.
-    return (ParamError, WavError, CliError, OSError)
+    return (ParamError, WavError, CliError, OutputError, OSError)
 
 
-def _check_target(path, option, protect=()):
-    """Refuse a file to be written later (--summary-json, --json) before any work is done."""
-    p = Path(path)
-    for other in protect:
-        if other is not None and p.resolve() == Path(other).resolve():
-            raise CliError(f"{option} {path}: is one of the command's audio or automation "
-                           "files; choose another name")
-    if p.is_dir():
-        raise CliError(f"{option} {path}: is a directory, expected a file path")
-    if not p.parent.is_dir():
-        raise CliError(f"{option} {path}: folder {p.parent} does not exist")
+def _guard(args, writes=(), folders=(), take=None):
+    """Check every path the command will write against what it reads and each other
+    (livedyn.outputs) before anything is opened; returns the checked Outputs."""
+    from .outputs import Outputs
+
+    g = Outputs()
+    for option, attr in (("IN.wav", "input"), ("--key", "key"), ("--automation", "automation"),
+                         ("--input-file", "input_file"), ("--key-file", "key_file")):
+        g.read(option, getattr(args, attr, None))
+    alg = getattr(args, "algorithm", None)
+    if alg is not None and str(alg).endswith(".py"):
+        g.read("--algorithm", alg)
+    preset = getattr(args, "preset", None)
+    if preset is not None:
+        from . import presets
+
+        try:
+            g.read("--preset", presets._resolve(preset))
+        except ValueError:
+            pass  # an unknown preset is reported when it is loaded
+    for option, path in writes:
+        g.write(option, path)
+    for option, path, names in folders:
+        g.folder(option, path, names)
+    if take is not None:
+        g.take(*take)
+    g.result = g.check()
+    for line in g.notes:
+        print(line, flush=True)
+    return g
 
 
 def _write_json(path, option, data):
@@ -74,9 +94,11 @@ def _setup_from(args):
 def cmd_render(args):
     from .render import render
 
-    if args.summary_json:
-        _check_target(args.summary_json, "--summary-json",
-                      (args.input, args.out, args.key, args.automation))
+    from .dsp.layout import TRACE_NAMES
+
+    trace_files = [f"{n}.wav" for n in ("input", "output", "key", *TRACE_NAMES)] + ["trace.json"]
+    _guard(args, writes=[("--out", args.out), ("--summary-json", args.summary_json)],
+           folders=[("--trace", args.trace, trace_files)] if args.trace else ())
     summary = render(args.input, args.out, _setup_from(args), key_path=args.key,
                      automation_path=args.automation, trace_dir=args.trace,
                      blocksize=args.blocksize, keep_latency=args.keep_latency,
@@ -108,8 +130,8 @@ def _factory(args):
 def cmd_measure(args):
     from . import analysis
 
-    if args.json:
-        _check_target(args.json, "--json")
+    _guard(args, writes=[("--json", args.json)],
+           folders=[("--plot", args.plot, ("curve.png", "distortion.png"))] if args.plot else ())
     make = _factory(args)
     proc = make()
     title = f"{proc.algorithm.name} at {args.samplerate:g} Hz"
@@ -212,10 +234,13 @@ def cmd_demo(args):
     from . import demo
     from .render import Setup, render
 
+    from .outputs import check_target
+
     out = Path(args.out)
-    _make_folder(out, "--out")
     if not (args.seconds > 0):
         raise CliError(f"--seconds {args.seconds:g}: expected a duration above 0")
+    check_target(out, "--out", folder=True)
+    _make_folder(out, "--out")
     if not args.offline_only:
         headless = args.headless or not _have_soundcard()
         where = "headless (no soundcard found: a JACK server with its dummy backend)" \
@@ -364,6 +389,11 @@ def _cmd_run(args):
     if args.loopback and not args.headless:
         raise CliError("--loopback needs --headless (on hardware, connect a cable)")
     fs = args.samplerate
+    g = _guard(args, writes=[("--stats-json", args.stats_json)],
+               take=("--record", args.record) if args.record else None)
+    if args.record:  # a folder holding a take already gets a numbered one beside it
+        args.record = g.result["take"]
+        args.stats_json = g.moved(args.stats_json)
     main_in = _channel_list(args.main_inputs, "--main-inputs")
     key_in = _channel_list(args.key_inputs, "--key-inputs")
     outs = _channel_list(args.outputs, "--outputs")

@@ -558,6 +558,12 @@ def save(preset: Preset, path) -> Path:
         raise PresetError(f"{name}: is a directory, expected a preset file path")
     if not target.parent.is_dir():
         raise PresetError(f"{name}: folder {target.parent} does not exist")
+    from .outputs import OutputError, check_target
+
+    try:  # only a regular file or a new name (never a FIFO or a device)
+        check_target(target, "preset")
+    except OutputError as e:
+        raise PresetError(str(e)) from None
     text = dumps(preset, target)
     # Self-check: what we write must read back to the same values.
     back = _from_doc(tomllib.loads(text), target, text)

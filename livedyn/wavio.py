@@ -297,6 +297,9 @@ class WavWriter:
                            f"{', '.join(CONTAINERS)}")
         if self.path.is_dir():
             raise WavError(f"{name}: is a directory, expected a WAV file path")
+        if self.path.exists() and not self.path.is_file():
+            raise WavError(f"{name}: not a regular file (a FIFO or a device), expected a WAV "
+                           "file path or a new name")
         folder = self.path.parent
         if not folder.is_dir():
             raise WavError(f"{name}: folder {folder} does not exist")

@@ -652,6 +652,16 @@ class ConsoleModel:
                                 algorithm_file=Path(source))
         else:
             pr = presets.Preset(name, dict(self.slots[self.active]), desc)
+        if source is not None:
+            from ..outputs import OutputError, Outputs
+
+            g = Outputs()  # never save over the algorithm file itself
+            g.read("algorithm", source)
+            g.write("save", target)
+            try:
+                g.check()
+            except OutputError as e:
+                raise ConsoleError(str(e)) from None
         presets.save(pr, target)
         self.info(f"saved slot {self.active.upper()} to {target}")
 
