@@ -109,6 +109,10 @@ def cmd_render(args):
         print(f"  traces written to {args.trace}/")
     if args.summary_json:
         _write_json(args.summary_json, "--summary-json", summary.as_dict())
+    if summary.muted_blocks and not args.accept_muted:
+        print(f"livedyn: error: {args.out}: {summary.muted_blocks} blocks of non-finite output "
+              "were muted (use --accept-muted to exit 0 anyway)", file=sys.stderr)
+        return EXIT_INCOMPLETE
     return 0
 
 
@@ -681,6 +685,9 @@ def build_parser():
     r.add_argument("--format", choices=["PCM_16", "PCM_24", "PCM_32", "FLOAT"],
                    help="output sample format (default: as the input)")
     r.add_argument("--summary-json", metavar="FILE")
+    r.add_argument("--accept-muted", action="store_true",
+                   help="exit 0 even when blocks of non-finite output were muted (they are "
+                        "written as silence and counted in the summary either way)")
     r.set_defaults(func=cmd_render)
 
     m = sub.add_parser("measure", help="measure a processor: curve, timing, latency, distortion",

@@ -126,6 +126,10 @@ class Summary:
     seconds: float
     automation_events: int = 0
     parameters: dict = field(default_factory=dict)
+    #: Output blocks that held a non-finite sample and were written as silence (the last
+    #: safety stage, as live)
+    muted_blocks: int = 0
+    muted_frames: int = 0
 
     def as_dict(self):
         return dict(self.__dict__)
@@ -160,6 +164,9 @@ class Summary:
               f"({1000 * self.latency_samples / self.samplerate:.2f} ms, {comp})"
         if self.nonfinite_inputs:
             yield f"  {self.nonfinite_inputs} non-finite input samples were replaced by 0"
+        if self.muted_blocks:
+            yield (f"  {self.muted_blocks} output blocks ({self.muted_frames} frames) held "
+                   "non-finite samples and were muted")
 
 
 class _Progress:
@@ -312,10 +319,21 @@ def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_lat
         def safety(y):
             safety_stage(y, len(y), y.shape[1], safe, 0, safety_stats)
             return y
+    muted = [0, 0]  # blocks, frames
+
+    def last_stage(y):
+        # always on, as live: a block holding a NaN or an infinity is written as silence
+        if not np.isfinite(y).all():
+            y = np.zeros_like(y)
+            muted[0] += 1
+            muted[1] += len(y)
+        return y
+
     try:
         with WavWriter(out_path, int(fs), ch, subtype, frames_hint=frames) as out:
             def emit(y):
                 nonlocal to_skip
+                y = last_stage(y)
                 if to_skip:
                     cut = min(to_skip, len(y))
                     y = y[cut:]
@@ -390,4 +408,5 @@ def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_lat
         input_meters=meters_in.snapshot(), output_meters=meters_out.snapshot(),
         nonfinite_inputs=proc.nonfinite_count, seconds=time.perf_counter() - t0,
         automation_events=len(auto) if auto is not None else 0, parameters=proc.describe(),
+        muted_blocks=muted[0], muted_frames=muted[1],
     )
