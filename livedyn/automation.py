@@ -315,6 +315,9 @@ class Automation:
         """
         name = str(path)
         text = read_text_file(path, AutomationError, "automation", MAX_BYTES)
+        from .limits import check_lines
+
+        check_lines(name, text, AutomationError)
         samplerate = None
         lazy = _Events()
         steps = {}  # name -> list of (frame, line)
@@ -440,7 +443,9 @@ def _parse_header(line, fail) -> int:
 
 def _parse_frame(text, fail) -> int:
     if not _FRAME_RE.fullmatch(text):
-        raise fail(f"frame {text!r}: expected a whole number >= 0")
+        raise fail(f"frame {text[:40]!r}: expected a whole number >= 0")
+    if len(text.lstrip("0")) > len(str(_MAX_FRAME)):
+        raise fail(f"frame of {len(text)} digits: too large, expected at most {_MAX_FRAME}")
     f = int(text)
     if f > _MAX_FRAME:
         raise fail(f"frame {text}: too large, expected at most {_MAX_FRAME}")

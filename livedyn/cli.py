@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import sys
 from pathlib import Path
 
@@ -134,6 +135,11 @@ def _factory(args):
 def cmd_measure(args):
     from . import analysis
 
+    if args.what == "distortion" and not (math.isfinite(args.frequency) and
+                                          0 < args.frequency < args.samplerate / 4):
+        raise CliError(f"--frequency {args.frequency:g}: expected a tone above 0 Hz and below "
+                       f"a quarter of the sample rate ({args.samplerate / 4:g} Hz), so that "
+                       "its harmonics are measured")
     _guard(args, writes=[("--json", args.json)],
            folders=[("--plot", args.plot, ("curve.png", "distortion.png"))] if args.plot else ())
     make = _factory(args)
@@ -393,6 +399,9 @@ def _cmd_run(args):
     if args.loopback and not args.headless:
         raise CliError("--loopback needs --headless (on hardware, connect a cable)")
     fs = args.samplerate
+    if not (math.isfinite(fs) and fs == int(fs) and 8000 <= fs <= 384000):
+        raise CliError(f"--samplerate {fs:g}: expected a whole number of Hz from 8000 to "
+                       "384000")
     g = _guard(args, writes=[("--stats-json", args.stats_json)],
                take=("--record", args.record) if args.record else None)
     if args.record:  # a folder holding a take already gets a numbered one beside it
@@ -409,7 +418,10 @@ def _cmd_run(args):
         from . import demo
 
         length = seconds if seconds is not None else 16.0
-        sc = demo.scenario(int(fs), seconds=max(length, 2.0))
+        try:
+            sc = demo.scenario(int(fs), seconds=max(length, 2.0))
+        except ValueError as e:  # the scenario's own range errors: name the option
+            raise CliError(f"--key-demo: {e}") from None
         if interactive and args.seconds is None:
             args.loop = True  # at the console the scene repeats until you quit
         main_src = ArraySource(sc["music"], loop=args.loop)
@@ -804,6 +816,15 @@ def build_parser():
     return ap
 
 
+def _shortened(msg):
+    """The error line with every overlong value in it cut short."""
+    from .outputs import short
+
+    if len(msg) <= 400:
+        return msg
+    return " ".join(short(t) for t in msg.split(" "))
+
+
 def main(argv=None):
     ap = build_parser()
     args = ap.parse_args(argv)
@@ -819,7 +840,7 @@ def main(argv=None):
         msg = str(e).splitlines()[0] if str(e) else type(e).__name__
         if isinstance(e, OSError) and e.filename:
             msg = f"{e.filename}: {e.strerror}"
-        print(f"livedyn: error: {msg}", file=sys.stderr)
+        print(f"livedyn: error: {_shortened(msg)}", file=sys.stderr)
         return EXIT_USAGE
     except KeyboardInterrupt:
         print("livedyn: interrupted", file=sys.stderr)

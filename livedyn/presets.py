@@ -351,10 +351,17 @@ def load(path_or_name) -> Preset:
     path = _resolve(path_or_name)
     name = str(path)
     text = read_text_file(path, PresetError, "preset")
+    from .limits import check_depth, check_doc, check_lines
+
+    check_lines(name, text, PresetError)
+    check_depth(name, text, PresetError)
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
         raise _toml_error(name, text, e) from None
+    except RecursionError:  # a backstop for the depth check
+        raise PresetError(f"{name}: nested too deep, expected a flat preset") from None
+    check_doc(name, doc, PresetError, lambda k: _key_line(text, None, k))
     return _from_doc(doc, path, text)
 
 

@@ -107,3 +107,67 @@ def test_render_mutes_and_counts_non_finite_output(work, monkeypatch, capsys):
     calls[0] = 0
     assert cli.main(["render", "in.wav", "--out", "o2.wav", "--blocksize", "1000",
                      "--accept-muted"]) == 0
+
+
+def _one_line_2(argv, capsys):
+    code = cli.main(argv)
+    cap = capsys.readouterr()
+    lines = cap.err.strip().splitlines()
+    assert code == 2 and len(lines) == 1 and lines[0].startswith("livedyn: error: "), cap.err
+    assert len(lines[0]) < 400
+    return lines[0]
+
+
+PRESET_HEAD = 'preset_format = 1\nalgorithm = "compressor"\n'
+
+
+@pytest.mark.parametrize("body,word", [
+    ("[params]\nthreshold = 1" + "0" * 400 + "\n", "digits, expected at most"),
+    ("[params]\nratio = -" + "9" * 30 + "\n", "digits, expected at most"),
+    ("[params]\nthreshold = " + "[" * 1000 + "]" * 1000 + "\n", "nested more than"),
+    ("[params]\nthreshold = [\n" + "[\n" * 3000 + "]\n" * 3001, "nested more than"),
+    (".".join(["a"] * 50000) + " = 1\n", "characters, expected at most 4096"),
+    ("k" * 200 + " = 1\n", "characters, expected at most 128"),
+    ("[params]\nthreshold = 1e999\n", "out of range"),
+])
+def test_hostile_presets_are_one_line(work, capsys, body, word):
+    (work / "h.toml").write_text(PRESET_HEAD + body)
+    assert word in _one_line_2(["render", "in.wav", "--out", "o.wav", "--preset", "h.toml"],
+                               capsys)
+    assert not (work / "o.wav").exists()
+
+
+@pytest.mark.parametrize("line,word", [
+    ("9" * 30 + " threshold -20", "digits: too large"),
+    ("9" * 5000 + " threshold -20", "characters, expected at most 4096"),
+    ("0 threshold " + "1" * 900000, "characters, expected at most 4096"),
+    ("0.." + "9" * 40 + " threshold -40 -> 0", "too large"),
+])
+def test_hostile_automation_is_one_line(work, capsys, line, word):
+    (work / "a.txt").write_text(f"livedyn-automation 1 samplerate={FS}\n{line}\n")
+    assert word in _one_line_2(["render", "in.wav", "--out", "o.wav", "--automation", "a.txt"],
+                               capsys)
+
+
+@pytest.mark.parametrize("argv,word", [
+    (["new-algorithm", ""], "expected a file name"),
+    (["new-algorithm", "/"], "expected a file name"),
+    (["measure", "distortion", "--frequency", "0"], "--frequency 0: expected a tone"),
+    (["measure", "distortion", "--frequency", "nan"], "--frequency nan"),
+    (["measure", "distortion", "--frequency", "1e9"], "below a quarter"),
+    (["measure", "distortion", "--frequency", "-50"], "--frequency -50"),
+    (["run", "--key-demo", "--no-ui", "--seconds", "601"], "at most 600"),
+    (["run", "--key-demo", "--no-ui", "--seconds", "inf"], "at most 600"),
+    (["run", "--key-demo", "--no-ui", "--seconds", "1e9"], "at most 600"),
+    (["run", "--key-demo", "--no-ui", "--samplerate", "0"], "--samplerate 0"),
+    (["run", "--key-demo", "--no-ui", "--samplerate", "nan"], "--samplerate nan"),
+    (["run", "--key-demo", "--no-ui", "--samplerate", "8000"], "from 32000"),
+])
+def test_listed_tracebacks_are_one_line(work, capsys, argv, word):
+    assert word in _one_line_2(argv, capsys)
+
+
+def test_long_values_are_shortened_in_the_error_line(work, capsys):
+    line = _one_line_2(["render", "in.wav", "--out", "o.wav", "--set",
+                        "threshold=" + "x" * 900000], capsys)
+    assert "characters)" in line

@@ -131,6 +131,9 @@ def template_text(name, stage="gain_curve", file=None):
 def write_template(name, stage="gain_curve"):
     """Write NAME.py (never over an existing file); returns its path."""
     path = Path(name)
+    if not str(name).strip() or path.name in ("", ".", ".."):
+        raise ParamError(f"new-algorithm {str(name)[:80]!r}: expected a file name such as "
+                         "my_compressor (or a path ending in one)")
     if path.suffix != ".py":
         path = path.with_name(path.name + ".py")
     stem = path.stem
