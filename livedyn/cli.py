@@ -834,6 +834,9 @@ def main(argv=None):
     from . import dsp
 
     dsp.announce = dsp.announce_on_stdout
+    from . import render
+
+    render.announce = lambda line: print(line, flush=True)
     try:
         return args.func(args)
     except _user_errors() as e:

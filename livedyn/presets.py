@@ -420,13 +420,10 @@ def _from_doc(doc: dict, path: Path, text: str) -> Preset:
                        f"file, relative to this preset's folder", None, "algorithm_file")
         algorithm_file = (path.parent / Path(af.strip()).expanduser()).resolve()
         alg_name = algorithm_file.stem
-        # the file's own schema when it loads (its own parameters included); otherwise check
-        # against livedyn's parameters and leave the file's errors to whoever runs it
-        try:
-            user = algorithms.get(str(algorithm_file))
-            schema, alg_name = user.schema, user.name
-        except ParamError:
-            schema = Schema(dict(ALL))
+        # a preset is data: the file is not imported here (its code runs only when the preset
+        # is used, see render.algorithm_of). livedyn's parameters are checked now; names of the
+        # file's own take numbers, checked against the file once it is loaded
+        schema = Schema(dict(ALL))
 
     # -- description
     desc = doc.get("description", "")
@@ -442,6 +439,12 @@ def _from_doc(doc: dict, path: Path, text: str) -> Preset:
                    None, "params")
     values = {}
     for k, raw in params.items():
+        if algorithm_file is not None and k not in schema and k.isidentifier():
+            if isinstance(raw, bool) or not isinstance(raw, (int, float)) or raw != raw:
+                raise fail(f"params.{k} = {raw!r}: expected a number (a parameter of the "
+                           "algorithm file's own)", "params", k)
+            values[k] = float(raw)
+            continue
         if k not in schema:
             what = f"a parameter of {alg_name}" if algorithm_file is None else "a parameter"
             raise fail(f"params.{k} = {raw!r}: not {what}, expected one of "
@@ -505,8 +508,9 @@ def dumps(preset: Preset, path=None) -> str:
         schema = preset.schema()
     except ParamError as e:
         raise PresetError(f"{where}: {e}") from None
+    own = [k for k in preset.values if k not in schema and preset.algorithm_file is not None]
     for k in preset.values:
-        if k not in schema:
+        if k not in schema and k not in own:
             raise PresetError(f"{where}: params.{k}: not a parameter of {preset.algorithm}, "
                               f"expected one of {', '.join(schema.names())}")
     top = {"preset_format": FORMAT_VERSION}
@@ -538,6 +542,11 @@ def dumps(preset: Preset, path=None) -> str:
             raise PresetError(f"{where}: {p.name} = {v!r}: cannot be written as TOML "
                               f"({' '.join(str(e).split())})") from None
         lines.append(f"{entry:<26} # {_comment(p)}")
+    for k in own:  # the algorithm file's own parameters, checked when it is loaded
+        v = float(preset.values[k])
+        if not math.isfinite(v):
+            raise PresetError(f"{where}: {k} = {v!r}: expected a finite number")
+        lines.append(f"{tomli_w.dumps({k: v}).rstrip(chr(10)):<26} # the file's own")
     try:
         head = tomli_w.dumps(top)
     except (TypeError, ValueError) as e:

@@ -51,12 +51,23 @@ def parse_setting(text):
     return name.strip(), value.strip()
 
 
+#: Where ``algorithm_of`` says which algorithm file a preset is about to run (a callable
+#: taking one line, or None); the command line points it at standard output.
+announce = None
+_announced = set()
+
+
 def algorithm_of(setup: Setup, preset=None) -> str:
     """The algorithm (a built-in name or a file's path) that a Setup and its loaded preset
-    name; RenderError when --algorithm and the preset disagree."""
+    name; RenderError when --algorithm and the preset disagree. A preset naming an algorithm
+    file is announced (:data:`announce`) before the file is loaded: its code will run."""
     algo = setup.algorithm
     if preset is not None:
         if preset.algorithm_file is not None:
+            if announce is not None and preset.algorithm_file not in _announced:
+                _announced.add(preset.algorithm_file)
+                announce(f"preset {setup.preset} runs the algorithm file "
+                         f"{preset.algorithm_file} (Python code, with your permissions)")
             user = algorithms.get(str(preset.algorithm_file))
             preset.checked(user.schema)
             if algo and Path(algo).resolve() != Path(preset.algorithm_file).resolve():

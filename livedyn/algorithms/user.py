@@ -49,8 +49,10 @@ is unsafe.
 """
 from __future__ import annotations
 
+import dataclasses
 import enum
 import hashlib
+import os
 import importlib.util
 import re
 import sys
@@ -105,7 +107,7 @@ def _where(path, exc, line=None):
     return f"{path}:{line}" if line else str(path)
 
 
-def load(path, check=True):
+def load(path, check=True, _vetted=False, _digest=None):
     """Load, compile and check a user algorithm file; returns an Algorithm.
 
     Raises UserAlgorithmError (one line; ``.detail`` for the full message) when the file cannot
@@ -119,23 +121,38 @@ def load(path, check=True):
     except OSError as e:
         raise UserAlgorithmError(f"{path}: cannot read: {e.strerror}") from None
     digest = hashlib.sha256(source.encode()).hexdigest()[:12]
+    if _digest is not None and digest != _digest:
+        raise UserAlgorithmError(f"{path}: changed while being checked; save it again")
     with _CACHE_LOCK:
         got = _CACHE.get((path, digest, check))
     if got is not None:
         return got
-    alg = _build(path, source, digest)
-    if check:
-        from .checks import check_algorithm
+    if check and not _vetted and hasattr(os, "fork"):
+        # the file's code runs first in child processes with a time and memory limit: its
+        # top level, then (once compiled here) the checks
+        from .vet import vet_checks, vet_import
 
-        alg = check_algorithm(alg)
+        vet_import(path, source, digest)
+        alg = _build(path, source, digest)
+        alg = dataclasses.replace(alg, report=vet_checks(alg).report)
+    else:
+        alg = _build(path, source, digest)
+        if check:
+            from .checks import check_algorithm
+
+            alg = check_algorithm(alg)
     with _CACHE_LOCK:
         _CACHE[(path, digest, check)] = alg
     return alg
 
 
 def _build(path, source, digest):
-    from .builtin import Algorithm
+    module = _import(path, source, digest)
+    return _from_module(path, module, digest)
 
+
+def _import(path, source, digest):
+    """Run the file's top level as a module (after the static refusals)."""
     try:
         compile(source, str(path), "exec")
     except SyntaxError as e:
@@ -154,6 +171,11 @@ def _build(path, source, digest):
         raise UserAlgorithmError(f"{_where(path, e)}: {type(e).__name__}: {first}",
                                  traceback.format_exc()) from None
     sys.modules[modname] = module
+    return module
+
+
+def _from_module(path, module, digest):
+    from .builtin import Algorithm
 
     fns = {}
     for stage in STAGES:
