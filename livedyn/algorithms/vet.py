@@ -104,8 +104,37 @@ def vet_checks(alg, seconds=None, memory=None) -> VetResult:
     UserAlgorithmError."""
     from .checks import check_algorithm
 
+    _preload(alg)
     return _in_child(alg.source, "being checked", lambda: check_algorithm(alg).report,
                      seconds, memory)
+
+
+def _preload(alg):
+    """Load the built-in kernel that runs ``alg``'s stages here, before forking, from numba's
+    cache (compiling for the signature only, running nothing), so that neither the child nor
+    each later child loads it again; this process needs it next anyway."""
+    if alg.kind == "user":
+        return  # a whole kernel is compiled already
+    try:
+        import numba
+        import numpy as np
+
+        from ..processor import Processor
+
+        proc = Processor(alg, 48000.0, 2, warm=False)
+        kernel = proc._kernel
+        if kernel.signatures:
+            return
+        x = np.zeros((1, 2), np.float32)
+        args = (x, x, np.empty_like(x), proc.p, proc.st, proc.ring, proc._no_trace)
+        from ..dsp import announce, needs_compiling
+
+        cold = needs_compiling(kernel)
+        if cold and announce is not None:
+            announce(f"compiling the {alg.kind} kernel (first run only; cached afterwards) ...")
+        kernel.compile(tuple(numba.typeof(a) for a in args))
+    except Exception:
+        pass  # the child loads it then
 
 
 def _in_child(path, doing, job, seconds, memory) -> VetResult:
