@@ -9,7 +9,6 @@ the top level and in a stage), a crash (a write through a null pointer), ``sys.e
 from __future__ import annotations
 
 import os
-import subprocess
 import sys
 from pathlib import Path
 
@@ -65,9 +64,9 @@ def test_endless_loops_are_stopped(tmp_path, monkeypatch):
     monkeypatch.setattr(vet, "VET_SECONDS", 3.0)
     _refused(_file(tmp_path, "top_loop", "while True:\n    pass"),
              "did not finish within 3 s while being loaded")
-    monkeypatch.setattr(vet, "VET_SECONDS", 10.0)
+    monkeypatch.setattr(vet, "VET_SECONDS", 6.0)
     _refused(_file(tmp_path, "stage_loop", body="while over > -1.0:\n        over += 0.0"),
-             "did not finish within 10 s while being checked")
+             "did not finish within 6 s while being checked")
 
 
 def test_stage_allocating_2_to_the_40_is_refused(tmp_path):
@@ -90,13 +89,13 @@ def smoother(gain_db, p, s):
 '''
 
 
-def test_out_of_bounds_state_write_is_refused_not_a_crash(tmp_path):
+def test_out_of_bounds_state_write_is_refused_not_a_crash(tmp_path, capsys):
+    from livedyn import cli
+
     path = _file(tmp_path, "oob", text=SMOOTHER)
-    _refused(path, "smoother reads or writes out of bounds")
-    r = subprocess.run([str(LIVEDYN), "check", str(path)], capture_output=True, text=True,
-                       timeout=300, cwd=tmp_path)
-    assert r.returncode == 2, r.stderr
-    assert r.stderr.strip().count("\n") == 0 and "out of bounds" in r.stderr
+    assert cli.main(["check", str(path)]) == 2  # the bounds pass runs first: no segfault
+    err = capsys.readouterr().err.strip()
+    assert "\n" not in err and "smoother reads or writes out of bounds" in err
 
 
 def test_good_file_passes_with_the_childs_report(tmp_path):
@@ -105,7 +104,9 @@ def test_good_file_passes_with_the_childs_report(tmp_path):
     assert any(line.startswith("time per frame") for line in alg.report)
 
 
-def test_presets_never_import_an_algorithm_file(tmp_path):
+def test_presets_never_import_an_algorithm_file(tmp_path, capsys, monkeypatch):
+    from livedyn import cli
+
     marker = tmp_path / "ran"
     alg = _file(tmp_path, "sneaky", f"import os\nos.system('touch {marker}')")
     folder = tmp_path / "presets"
@@ -118,18 +119,16 @@ def test_presets_never_import_an_algorithm_file(tmp_path):
     assert [r[0] for r in rows] == ["s"]
     pr = presets.load(folder / "s.toml")
     presets.dumps(pr)
-    r = subprocess.run([str(LIVEDYN), "presets", "--show", str(folder / "s.toml")],
-                       capture_output=True, text=True, timeout=120, cwd=tmp_path)
-    assert r.returncode == 0, r.stderr
+    assert cli.main(["presets", "--show", str(folder / "s.toml")]) == 0
+    assert "algorithm_file" in capsys.readouterr().out
     assert not marker.exists()
     # running it says first which file will run
-    x = np.zeros((4800, 1), np.float32)
-    sf.write(tmp_path / "in.wav", x, 48000, subtype="FLOAT")
-    r = subprocess.run([str(LIVEDYN), "render", "in.wav", "--out", "o.wav", "--preset",
-                        str(folder / "s.toml")], capture_output=True, text=True, timeout=300,
-                       cwd=tmp_path)
-    assert r.returncode == 0, r.stderr
-    first = [ln for ln in r.stdout.splitlines() if str(alg) in ln][0]
+    monkeypatch.chdir(tmp_path)
+    sf.write(tmp_path / "in.wav", np.zeros((4800, 1), np.float32), 48000, subtype="FLOAT")
+    assert cli.main(["render", "in.wav", "--out", "o.wav", "--preset",
+                     str(folder / "s.toml")]) == 0
+    out = capsys.readouterr().out
+    first = [ln for ln in out.splitlines() if str(alg) in ln][0]
     assert "runs the algorithm file" in first and "Python code" in first
-    assert r.stdout.index(first) < r.stdout.index("-> o.wav")
-    assert r.stdout.count(first) == 1 and marker.exists()  # said once, then it ran
+    assert out.index(first) < out.index("-> o.wav")
+    assert out.count(first) == 1 and marker.exists()  # said once, then it ran
