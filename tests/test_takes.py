@@ -24,7 +24,7 @@ import soundfile as sf
 
 from livedyn import wavio
 from livedyn.wavio import TakeWriter, WavError, WavReader
-from tests.conftest import jack_registry, jackd_pids, make_sure_gone
+from tests.conftest import jack_registry, jackd_pids
 
 LIVEDYN = Path(sys.executable).parent / "livedyn"
 TOL = {"FLOAT": 0.0, "PCM_16": 2**-15, "PCM_24": 2**-23, "PCM_32": 2**-31}
@@ -150,6 +150,43 @@ def test_replaced_render_output_keeps_its_mode(tmp_path):
     assert (p.stat().st_mode & 0o777) == 0o600
 
 
+def _proc_state(pid):
+    try:
+        with open(f"/proc/{pid}/stat") as f:
+            return f.read().split(")")[-1].split()[0]  # R, S, Z, ...
+    except OSError:
+        return None
+
+
+def _free_server(name, tries=20):
+    """After livedyn was killed: its server gets SIGTERM from the kernel (it dies with its
+    parent); wait for it, kill what is left, and free its entry in JACK's table."""
+    from livedyn.engine.jackserver import JackError, JackServer
+
+    why = ""
+    for _ in range(tries):
+        for pid in jackd_pids(name):
+            if _proc_state(pid) not in (None, "Z"):
+                time.sleep(0.25)  # still shutting down on its SIGTERM
+        entries = [pid for pid, n in jack_registry() if n == name]
+        if not entries:
+            return ""
+        for pid in jackd_pids(name):
+            try:
+                os.kill(pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
+        if all(_proc_state(pid) in (None, "Z") for pid in entries):
+            srv = JackServer(48000, 64, name=name)
+            try:
+                srv.start(timeout=5.0)
+            except JackError as e:
+                why = str(e)
+            srv.stop()
+        time.sleep(0.25)
+    return why or f"entry held by {[(p, _proc_state(p)) for p, n in jack_registry() if n == name]}"
+
+
 def test_sigkill_mid_take_leaves_readable_files(tmp_path):
     rec = tmp_path / "R"
     env = dict(os.environ, JACK_NO_START_SERVER="1")
@@ -177,20 +214,10 @@ def test_sigkill_mid_take_leaves_readable_files(tmp_path):
             proc.kill()
             proc.wait()
         if name is not None:
-            class _S:
-                samplerate, period = 48000, 64
-            _S.name = name
-            for _ in range(50):  # the server gets SIGTERM when its parent dies
-                if not jackd_pids(name):
-                    break
-                time.sleep(0.1)
-            for _ in range(3):  # a dying server may still hold its entry for a moment
-                make_sure_gone(_S)
-                if name not in [n for _, n in jack_registry()]:
-                    break
-                time.sleep(0.5)
+            _free_server(name)
     assert name is not None
-    assert not jackd_pids(name) and name not in [n for _, n in jack_registry()]
+    assert not jackd_pids(name)
+    assert name not in [n for _, n in jack_registry()], _free_server(name, tries=1)
     lengths = {}
     for f in ("main", "key", "out"):
         p = rec / f"{f}.wav"
