@@ -23,7 +23,7 @@ from livedyn import cli
 FS = 48000
 HANG_SECONDS = 20  # far above what one example takes; only a hang gets near it
 MAX_BYTES = 200 << 20  # traced allocation per example
-FUZZ = settings(max_examples=25, deadline=None, derandomize=True,
+FUZZ = settings(max_examples=15, deadline=None, derandomize=True,
                 suppress_health_check=[HealthCheck.function_scoped_fixture,
                                        HealthCheck.too_slow])
 
@@ -98,7 +98,7 @@ lines = st.one_of(
 )
 
 
-@settings(FUZZ, max_examples=25)
+@settings(FUZZ, max_examples=15)
 @given(body=st.lists(lines, max_size=8), head=st.booleans())
 def test_fuzz_presets(work, capsys, body, head):
     text = ("preset_format = 1\nalgorithm = \"compressor\"\n" if head else "") + "\n".join(body)

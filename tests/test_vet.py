@@ -64,9 +64,9 @@ def test_endless_loops_are_stopped(tmp_path, monkeypatch):
     monkeypatch.setattr(vet, "VET_SECONDS", 3.0)
     _refused(_file(tmp_path, "top_loop", "while True:\n    pass"),
              "did not finish within 3 s while being loaded")
-    monkeypatch.setattr(vet, "VET_SECONDS", 6.0)
+    monkeypatch.setattr(vet, "VET_SECONDS", 4.0)
     _refused(_file(tmp_path, "stage_loop", body="while over > -1.0:\n        over += 0.0"),
-             "did not finish within 6 s while being checked")
+             "did not finish within 4 s while being checked")
 
 
 def test_stage_allocating_2_to_the_40_is_refused(tmp_path):
