@@ -25,7 +25,6 @@ from __future__ import annotations
 import errno
 import os
 import stat
-from pathlib import Path
 
 __all__ = ["OutputError", "Outputs", "check_target", "short", "TAKE_FILES"]
 

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import os
 import stat
-import subprocess
 
 import numpy as np
 import pytest
@@ -59,8 +58,8 @@ def test_render_output_onto_an_input_is_refused(work, capsys, inp, out):
             "--automation": "auto.txt", "--preset": "p.toml"}
     if out == "--trace":  # the folder's files: make the input live where a trace file goes
         os.mkdir("T")
-        os.replace(target, f"T/output.wav")
-        argv = {k: (f"T/output.wav" if v == target else v) for k, v in argv.items()}
+        os.replace(target, "T/output.wav")
+        argv = {k: ("T/output.wav" if v == target else v) for k, v in argv.items()}
         argv["--trace"] = "T"
     else:
         argv[out] = target
