@@ -21,8 +21,9 @@ sample rate (checking that rate against the audio is the caller's job: compare
 :attr:`Automation.samplerate`). Values are read with :meth:`livedyn.params.Param.parse` of the
 algorithm's schema, so ``-18 dBFS``, ``4:1``, ``inf``, ``off`` and choice names work.
 
-A ramp is expanded on load into steps every :data:`RAMP_STEP` frames from F0 on, plus an exact
-final step with B at F1. The value moves linearly, except ``ratio`` (the "slope" taper), which
+A ramp stands for steps every :data:`RAMP_STEP` frames from F0 on, plus an exact final step with
+B at F1; they are made while the events are read (lazily), so a ramp costs memory and time for
+the frames actually processed, not for the frames it spans. The value moves linearly, except ``ratio`` (the "slope" taper), which
 moves linearly in the slope ``1 - 1/ratio`` so that a ramp to ``inf`` is possible (halfway
 between 1:1 and inf:1 is 2:1). Choices and "off" cannot be ramped.
 
@@ -115,6 +116,88 @@ def expand_ramp(param, f0: int, f1: int, a: float, b: float, step: int = RAMP_ST
     return out
 
 
+def ramp_count(f0: int, f1: int, step: int = RAMP_STEP) -> int:
+    """Number of steps :func:`expand_ramp` gives for ``f0..f1`` (without making them)."""
+    return 1 + len(range(f0 + step, f1, step)) + 1
+
+
+def iter_ramp(param, f0: int, f1: int, a: float, b: float, step: int = RAMP_STEP,
+              start: int = 0):
+    """The steps of :func:`expand_ramp` one at a time, from the first at or after frame
+    ``start``: memory does not grow with the ramp's length."""
+    slope = param.taper == "slope"
+    ua, ub = (ratio_to_slope(a), ratio_to_slope(b)) if slope else (float(a), float(b))
+    lo, hi = min(ua, ub), max(ua, ub)
+    span = f1 - f0
+    if start <= f0:
+        yield (f0, param.name, float(a))
+    k = max(1, -(-(start - f0) // step))
+    for f in range(f0 + k * step, f1, step):
+        u = ua + (ub - ua) * ((f - f0) / span)
+        u = min(max(u, lo), hi)
+        v = slope_to_ratio(u) if slope else u
+        yield (f, param.name, param.check(v))
+    if start <= f1:
+        yield (f1, param.name, float(b))
+
+
+def _keyed(order, events):
+    for j, (f, n, v) in enumerate(events):
+        yield (f, order, j, n, v)
+
+
+class _Events:
+    """The events of an :class:`Automation` in order, made on demand.
+
+    Steps are stored; a ramp is stored as its line (frames and end values) and expanded while
+    it is read, so memory is proportional to the lines of the file, not to the frames a ramp
+    spans. Sorted by frame; equal frames keep the order of their lines (then of the ramp's own
+    steps). Compares equal to a list of the same ``(frame, name, value)`` tuples.
+    """
+
+    def __init__(self):
+        self.steps = []  # (frame, order, name, value), sorted by (frame, order)
+        self.ramps = []  # (f0, order, f1, param, a, b)
+        self.order = 0
+
+    def _sources(self, start=0):
+        i = bisect.bisect_left(self.steps, start, key=lambda e: e[0])
+        yield ((f, o, 0, n, v) for f, o, n, v in self.steps[i:])
+        for f0, o, f1, param, a, b in self.ramps:
+            if f1 >= start:
+                yield _keyed(o, iter_ramp(param, f0, f1, a, b, start=start))
+
+    def iter_from(self, start=0):
+        """Events with ``frame >= start``, in order."""
+        import heapq
+
+        for f, _, _, n, v in heapq.merge(*self._sources(start), key=lambda e: e[:3]):
+            yield (f, n, v)
+
+    def __iter__(self):
+        return self.iter_from(0)
+
+    def __len__(self):
+        return len(self.steps) + sum(ramp_count(r[0], r[2]) for r in self.ramps)
+
+    def __getitem__(self, i):
+        if isinstance(i, slice) or i < 0:
+            return list(self)[i]
+        import itertools
+
+        for ev in itertools.islice(self, i, None):
+            return ev
+        raise IndexError(i)
+
+    def __eq__(self, other):
+        if isinstance(other, (_Events, list, tuple)):
+            return list(self) == list(other)
+        return NotImplemented
+
+    def __repr__(self):
+        return f"<{len(self.steps)} steps and {len(self.ramps)} ramps>"
+
+
 class Automation:
     """Frame-stamped parameter changes for one signal.
 
@@ -145,11 +228,24 @@ class Automation:
         self.samplerate = int(samplerate)
         self.schema = schema
         self.source = None
+        self._ev = _Events()
         evs = []
         for frame, name, value in events:
             evs.append(self._event(frame, name, value))
-        evs.sort(key=lambda e: e[0])  # stable
         self.events = evs
+
+    @property
+    def events(self) -> _Events:
+        """All events in order (ramps expanded while read)."""
+        return self._ev
+
+    @events.setter
+    def events(self, evs):
+        """Replace every event by the steps ``evs`` (sorted here, stably, by frame)."""
+        self._ev = _Events()
+        self._ev.steps = [(f, i, n, v) for i, (f, n, v) in enumerate(evs)]
+        self._ev.steps.sort(key=lambda e: e[0])
+        self._ev.order = len(self._ev.steps)
 
     # -- building ------------------------------------------------------------------------------
     def _event(self, frame, name, value):
@@ -184,24 +280,28 @@ class Automation:
         Kept sorted; after any events already at ``frame`` (the new one wins). ``value`` may be
         text (parsed with the schema) or a stored float (checked against the schema if any).
         """
-        ev = self._event(frame, name, value)
-        i = bisect.bisect_right(self.events, ev[0], key=lambda e: e[0])
-        self.events.insert(i, ev)
+        f, n, v = self._event(frame, name, value)
+        e = self._ev
+        e.order += 1
+        bisect.insort(e.steps, (f, e.order, n, v), key=lambda t: (t[0], t[1]))
 
     def events_between(self, f0: int, f1: int) -> list:
         """Events with ``f0 <= frame < f1``, in order."""
-        i = bisect.bisect_left(self.events, f0, key=lambda e: e[0])
-        j = bisect.bisect_left(self.events, f1, key=lambda e: e[0])
-        return self.events[i:max(i, j)]
+        out = []
+        for ev in self._ev.iter_from(max(0, f0)):
+            if ev[0] >= f1:
+                break
+            out.append(ev)
+        return out
 
     def __len__(self):
         return len(self.events)
 
     def __iter__(self):
-        return iter(self.events)
+        return iter(self._ev)
 
     def __repr__(self):
-        return f"Automation(samplerate={self.samplerate}, {len(self.events)} events)"
+        return f"Automation(samplerate={self.samplerate}, {len(self._ev)} events)"
 
     # -- files ---------------------------------------------------------------------------------
     @classmethod
@@ -215,8 +315,11 @@ class Automation:
         """
         name = str(path)
         text = read_text_file(path, AutomationError, "automation", MAX_BYTES)
+        from .limits import check_lines
+
+        check_lines(name, text, AutomationError)
         samplerate = None
-        events = []  # (frame, file_order, name, value)
+        lazy = _Events()
         steps = {}  # name -> list of (frame, line)
         ramps = {}  # name -> list of (f0, f1, line)
         order = 0
@@ -256,9 +359,8 @@ class Automation:
                 if p.off_value is not None and p.off_value in (a, b):
                     rng = p.describe_range().split(" or off")[0].removeprefix("expected ")
                     raise fail(f"{pname}: cannot ramp from or to off, expected values {rng}")
-                for ev in expand_ramp(p, f0, f1, a, b):
-                    events.append((ev[0], order, ev[1], ev[2]))
-                    order += 1
+                lazy.ramps.append((f0, order, f1, p, a, b))  # expanded while read
+                order += 1
                 ramps.setdefault(pname, []).append((f0, f1, lineno))
             else:
                 f = _parse_frame(ftext, fail)
@@ -266,16 +368,18 @@ class Automation:
                     raise fail(f"{rest!r}: a ramp needs frames 'F0..F1', got the single "
                                f"frame {ftext}")
                 v = _parse_value(p, rest, fail)
-                events.append((f, order, pname, v))
+                lazy.steps.append((f, order, pname, v))
                 order += 1
                 steps.setdefault(pname, []).append((f, lineno))
         if samplerate is None:
             raise AutomationError(f"{name}: no header, expected a first line "
                                   f"'{FORMAT_NAME} {FORMAT_VERSION} samplerate=RATE'")
         _check_overlaps(name, steps, ramps)
-        events.sort(key=lambda e: (e[0], e[1]))
+        lazy.steps.sort(key=lambda e: (e[0], e[1]))
+        lazy.ramps.sort(key=lambda r: r[1])
+        lazy.order = order
         out = cls(samplerate, (), schema)
-        out.events = [(f, n, v) for f, _, n, v in events]
+        out._ev = lazy
         out.source = Path(path)
         return out
 
@@ -286,15 +390,20 @@ class Automation:
             "# FRAME PARAMETER VALUE (a step); F0..F1 PARAMETER A -> B (a ramp, every "
             f"{RAMP_STEP} frames)",
         ]
-        for f, n, v in self.events:
+        def text(n, v):
             p = self.schema.params.get(n) if self.schema is not None else None
             if p is not None and p.off_value is not None and v == p.off_value:
-                text = "off"
-            elif p is not None:
-                text = p.to_text(v)
-            else:
-                text = "inf" if math.isinf(v) else repr(float(v))
-            lines.append(f"{f} {n} {text}")
+                return "off"
+            if p is not None:
+                return p.to_text(v)
+            return "inf" if math.isinf(v) else repr(float(v))
+
+        # in the order of their lines: the same order of events at equal frames on reload
+        items = [(o, f"{f} {n} {text(n, v)}") for f, o, n, v in self._ev.steps]
+        items += [(o, f"{f0}..{f1} {p.name} {text(p.name, a)} -> {text(p.name, b)}")
+                  for f0, o, f1, p, a, b in self._ev.ramps]
+        items.sort(key=lambda t: t[0])
+        lines += [t for _, t in items]
         return "\n".join(lines) + "\n"
 
     def save(self, path) -> None:
@@ -333,7 +442,9 @@ def _parse_header(line, fail) -> int:
 
 def _parse_frame(text, fail) -> int:
     if not _FRAME_RE.fullmatch(text):
-        raise fail(f"frame {text!r}: expected a whole number >= 0")
+        raise fail(f"frame {text[:40]!r}: expected a whole number >= 0")
+    if len(text.lstrip("0")) > len(str(_MAX_FRAME)):
+        raise fail(f"frame of {len(text)} digits: too large, expected at most {_MAX_FRAME}")
     f = int(text)
     if f > _MAX_FRAME:
         raise fail(f"frame {text}: too large, expected at most {_MAX_FRAME}")
@@ -389,12 +500,15 @@ class AutomationCursor:
 
     def __init__(self, automation):
         if automation is None:
-            self._events = []
+            it = iter(())
         elif isinstance(automation, Automation):
-            self._events = automation.events
+            it = iter(automation.events)  # ramps expand as the blocks reach them
         else:
-            self._events = sorted(list(automation), key=lambda e: e[0])
-        self._i = 0
+            it = iter(sorted(list(automation), key=lambda e: e[0]))
+        self._it = it
+        self._next = next(it, None)
+        self._handed = 0
+        self._total = len(automation) if automation is not None else 0
         self._pos = 0
 
     @property
@@ -405,7 +519,7 @@ class AutomationCursor:
     @property
     def pending(self) -> int:
         """Events not yet handed out."""
-        return len(self._events) - self._i
+        return self._total - self._handed
 
     def split(self, start: int, stop: int) -> list:
         """Sub-ranges of the block ``[start, stop)`` with the events due before each.
@@ -425,20 +539,16 @@ class AutomationCursor:
                 f"block starts at frame {start}, before the end of the previous block "
                 f"({self._pos}): expected blocks in order")
         out = []
-        ev = self._events
-        n = len(ev)
-        i = self._i
         pos = start
         while pos < stop:
-            j = i
-            while j < n and ev[j][0] <= pos:
-                j += 1
-            due = ev[i:j]
-            i = j
-            nxt = ev[i][0] if i < n and ev[i][0] < stop else stop
+            due = []
+            while self._next is not None and self._next[0] <= pos:
+                due.append(self._next)
+                self._next = next(self._it, None)
+            self._handed += len(due)
+            nxt = self._next[0] if self._next is not None and self._next[0] < stop else stop
             out.append((pos, nxt, due))
             pos = nxt
-        self._i = i
         self._pos = max(self._pos, stop)
         return out
 

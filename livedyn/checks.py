@@ -214,7 +214,7 @@ def _bounds_pass(alg, x, key, fs):
 
     from numba.core.registry import CPUDispatcher
 
-    proc = Processor(alg, fs, x.shape[1])
+    proc = Processor(alg, fs, x.shape[1], warm=False)  # nothing unchecked runs before this pass
     p = proc.p.copy()
     ns = max(alg.state_size, 0)
     # the file's own numba helpers are bounds-checked too: while the stages compile, the

@@ -7,10 +7,14 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import sys
 from pathlib import Path
 
 EXIT_USAGE = 2
+#: A run that played to its end but could not write all it should (disk full, ...): what was
+#: written is kept and readable.
+EXIT_INCOMPLETE = 4
 
 CAUTION = ("Caution: live monitoring can be loud. Start with the monitor level down, keep "
            "microphones away from loudspeakers (feedback), and follow the venue's rules.")
@@ -21,12 +25,13 @@ class CliError(Exception):
 
 
 def _user_errors():
+    from .outputs import OutputError
     from .params import ParamError
     from .wavio import WavError
 
     # OSError: any file-system failure (missing folder, a file where a folder should be, disk
     # full, ...) is the user's to fix and gets the one-line error too.
-    return (ParamError, WavError, CliError, OSError)
+    return (ParamError, WavError, CliError, OutputError, OSError)
 
 
 def _check_target(path, option, protect=()):
@@ -41,6 +46,38 @@ def _check_target(path, option, protect=()):
     problem = target_problem(p)
     if problem:
         raise CliError(f"{option} {path}: {problem}")
+
+
+def _guard(args, writes=(), folders=(), take=None):
+    """Check every path the command will write against what it reads and each other
+    (livedyn.outputs) before anything is opened; returns the checked Outputs."""
+    from .outputs import Outputs
+
+    g = Outputs()
+    for option, attr in (("IN.wav", "input"), ("--key", "key"), ("--automation", "automation"),
+                         ("--input-file", "input_file"), ("--key-file", "key_file")):
+        g.read(option, getattr(args, attr, None))
+    alg = getattr(args, "algorithm", None)
+    if alg is not None and str(alg).endswith(".py"):
+        g.read("--algorithm", alg)
+    preset = getattr(args, "preset", None)
+    if preset is not None:
+        from . import presets
+
+        try:
+            g.read("--preset", presets._resolve(preset))
+        except ValueError:
+            pass  # an unknown preset is reported when it is loaded
+    for option, path in writes:
+        g.write(option, path)
+    for option, path, names in folders:
+        g.folder(option, path, names)
+    if take is not None:
+        g.take(*take)
+    g.result = g.check()
+    for line in g.notes:
+        print(line, flush=True)
+    return g
 
 
 def _write_json(path, option, data):
@@ -72,9 +109,11 @@ def _setup_from(args):
 def cmd_render(args):
     from .render import render
 
-    if args.summary_json:
-        _check_target(args.summary_json, "--summary-json",
-                      (args.input, args.out, args.key, args.automation))
+    from .dsp.layout import TRACE_NAMES
+
+    trace_files = [f"{n}.wav" for n in ("input", "output", "key", *TRACE_NAMES)] + ["trace.json"]
+    _guard(args, writes=[("--out", args.out), ("--summary-json", args.summary_json)],
+           folders=[("--trace", args.trace, trace_files)] if args.trace else ())
     summary = render(args.input, args.out, _setup_from(args), key_path=args.key,
                      automation_path=args.automation, trace_dir=args.trace,
                      blocksize=args.blocksize, keep_latency=args.keep_latency,
@@ -85,6 +124,10 @@ def cmd_render(args):
         print(f"  traces written to {args.trace}/")
     if args.summary_json:
         _write_json(args.summary_json, "--summary-json", summary.as_dict())
+    if summary.muted_blocks and not args.accept_muted:
+        print(f"livedyn: error: {args.out}: {summary.muted_blocks} blocks of non-finite output "
+              "were muted (use --accept-muted to exit 0 anyway)", file=sys.stderr)
+        return EXIT_INCOMPLETE
     return 0
 
 
@@ -121,8 +164,13 @@ def cmd_measure(args):
             print(f"  {k:11} {v}")
         raise CliError("measure: expected a measurement: " + ", ".join(MEASUREMENTS))
 
-    if args.json:
-        _check_target(args.json, "--json")
+    if args.what == "distortion" and not (math.isfinite(args.frequency) and
+                                          0 < args.frequency < args.samplerate / 4):
+        raise CliError(f"--frequency {args.frequency:g}: expected a tone above 0 Hz and below "
+                       f"a quarter of the sample rate ({args.samplerate / 4:g} Hz), so that "
+                       "its harmonics are measured")
+    _guard(args, writes=[("--json", args.json)],
+           folders=[("--plot", args.plot, ("curve.png", "distortion.png"))] if args.plot else ())
     make = _factory(args)
     proc = make()
     import textwrap
@@ -307,10 +355,13 @@ def cmd_demo(args):
     from . import demo
     from .render import Setup, render
 
+    from .outputs import check_target
+
     out = Path(args.out)
-    _make_folder(out, "--out")
     if not (args.seconds > 0):
         raise CliError(f"--seconds {args.seconds:g}: expected a duration above 0")
+    check_target(out, "--out", folder=True)
+    _make_folder(out, "--out")
     if not args.offline_only:
         headless = args.headless or not _have_soundcard()
         where = "headless (no soundcard found: a JACK server with its dummy backend)" \
@@ -472,6 +523,14 @@ def _cmd_run(args):
         raise CliError("--loopback needs --headless (on hardware, connect a cable)")
     _apply_picked(args)
     fs = args.samplerate
+    if not (math.isfinite(fs) and fs == int(fs) and 8000 <= fs <= 384000):
+        raise CliError(f"--samplerate {fs:g}: expected a whole number of Hz from 8000 to "
+                       "384000")
+    g = _guard(args, writes=[("--stats-json", args.stats_json)],
+               take=("--record", args.record) if args.record else None)
+    if args.record:  # a folder holding a take already gets a numbered one beside it
+        args.record = g.result["take"]
+        args.stats_json = g.moved(args.stats_json)
     main_in = _channel_list(args.main_inputs, "--main-inputs")
     key_in = _channel_list(args.key_inputs, "--key-inputs")
     outs = _channel_list(args.outputs, "--outputs")
@@ -484,7 +543,10 @@ def _cmd_run(args):
         from . import demo
 
         length = seconds if seconds is not None else 16.0
-        sc = demo.scenario(int(fs), seconds=max(length, 2.0))
+        try:
+            sc = demo.scenario(int(fs), seconds=max(length, 2.0))
+        except ValueError as e:  # the scenario's own range errors: name the option
+            raise CliError(f"--key-demo: {e}") from None
         if interactive and args.seconds is None:
             args.loop = True  # at the console the scene repeats until you quit
         main_src = ArraySource(sc["music"], loop=args.loop)
@@ -572,6 +634,11 @@ def _cmd_run(args):
           f"{100 * snap['callback_load']['median']:.1f} % / 99.9th "
           f"{100 * snap['callback_load']['p99_9']:.1f} % of the block period"
           + (f"; recorded to {args.record}/" if args.record else ""))
+    for line in (eng.record_error, session.stats_error):
+        if line:
+            print(f"livedyn: error: {line}", file=sys.stderr, flush=True)
+    if eng.record_error or session.stats_error:
+        return EXIT_INCOMPLETE
     # an orderly stop by SIGTERM or SIGHUP says so in the exit code (128 + the signal's
     # number, common practice, no source); Ctrl+C (SIGINT) is the usual way to end a run
     sig = session.signal_received
@@ -841,6 +908,9 @@ def build_parser():
     r.add_argument("--layout", choices=["mono", "stereo", "5.0", "5.1", "7.1"],
                    help="channel layout of the loudness figures (BS.1770-4 channel weights: LFE "
                         "left out, surrounds +1.5 dB); default: from the channel count")
+    r.add_argument("--accept-muted", action="store_true",
+                   help="exit 0 even when blocks of non-finite output were muted (they are "
+                        "written as silence and counted in the summary either way)")
     r.set_defaults(func=cmd_render)
 
     m = sub.add_parser("measure", help="measure a processor: curve, timing, latency, distortion",
@@ -1083,6 +1153,15 @@ def build_parser():
     return ap
 
 
+def _shortened(msg):
+    """The error line with every overlong value in it cut short."""
+    from .outputs import short
+
+    if len(msg) <= 400:
+        return msg
+    return " ".join(short(t) for t in msg.split(" "))
+
+
 def main(argv=None):
     ap = build_parser()
     args = ap.parse_args(argv)
@@ -1092,13 +1171,16 @@ def main(argv=None):
     from . import dsp
 
     dsp.announce = dsp.announce_on_stdout
+    from . import render
+
+    render.announce = lambda line: print(line, flush=True)
     try:
         return args.func(args)
     except _user_errors() as e:
         msg = str(e).splitlines()[0] if str(e) else type(e).__name__
         if isinstance(e, OSError) and e.filename:
             msg = f"{e.filename}: {e.strerror}"
-        print(f"livedyn: error: {msg}", file=sys.stderr)
+        print(f"livedyn: error: {_shortened(msg)}", file=sys.stderr)
         return EXIT_USAGE
     except KeyboardInterrupt:
         print("livedyn: interrupted", file=sys.stderr)

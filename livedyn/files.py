@@ -30,7 +30,8 @@ __all__ = ["target_problem", "reserve_temp", "write_text_atomic", "fsync_dir", "
 def target_problem(path, what="file") -> str | None:
     """Why ``path`` cannot be written as a ``what``, or None.
 
-    Returns ``"is a directory, expected a <what> path"`` or ``"folder F does not exist"``; the
+    Returns ``"is a directory, expected a <what> path"``, ``"folder F does not exist"`` or, for
+    an existing FIFO or device, ``"not a regular file ..."`` (only regular files are replaced); the
     caller prefixes the path it was given and raises its own error type.
     """
     p = Path(path)
@@ -38,6 +39,8 @@ def target_problem(path, what="file") -> str | None:
         return f"is a directory, expected a {what} path"
     if not p.parent.is_dir():
         return f"folder {p.parent} does not exist"
+    if p.exists() and not p.is_file():
+        return f"not a regular file (a FIFO or a device), expected a {what} path or a new name"
     return None
 
 

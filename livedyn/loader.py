@@ -12,6 +12,8 @@ live swap may still be crossfading from an older version's compiled code).
 """
 from __future__ import annotations
 
+import dataclasses
+import os
 import threading
 
 from . import algorithms
@@ -36,9 +38,18 @@ def load(path, check=True) -> Algorithm:
         got = _CACHE.get((path, digest, check))
     if got is not None:
         return got
-    alg = compile_file(path, source, digest)
-    if check:
-        alg = check_algorithm(alg)
+    if check and hasattr(os, "fork"):
+        # the file's code runs first in child processes with a time and memory limit: its top
+        # level, then (once compiled here) the checks (livedyn/vet.py)
+        from .vet import vet_checks, vet_import
+
+        vet_import(path, source, digest)
+        alg = compile_file(path, source, digest)
+        alg = dataclasses.replace(alg, report=vet_checks(alg).report)
+    else:
+        alg = compile_file(path, source, digest)
+        if check:
+            alg = check_algorithm(alg)
     with _CACHE_LOCK:
         _CACHE[(path, digest, check)] = alg
     return alg

@@ -299,10 +299,17 @@ def load(path_or_name) -> Preset:
     path = _resolve(path_or_name)
     name = str(path)
     text = read_text_file(path, PresetError, "preset")
+    from .limits import check_depth, check_doc, check_lines
+
+    check_lines(name, text, PresetError)
+    check_depth(name, text, PresetError)
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
         raise _toml_error(name, text, e) from None
+    except RecursionError:  # a backstop for the depth check
+        raise PresetError(f"{name}: nested too deep, expected a flat preset") from None
+    check_doc(name, doc, PresetError, lambda k: _key_line(text, None, k))
     return _from_doc(doc, path, text)
 
 
@@ -361,15 +368,10 @@ def _from_doc(doc: dict, path: Path, text: str) -> Preset:
                        f"file, relative to this preset's folder", None, "algorithm_file")
         algorithm_file = (path.parent / Path(af.strip()).expanduser()).resolve()
         alg_name = algorithm_file.stem
-        # the file's own schema when it loads (its own parameters included); otherwise check
-        # against livedyn's parameters and leave the file's errors to whoever runs it
-        try:
-            from .loader import load  # lazy: compiling a file pulls in numba
-
-            user = load(algorithm_file)
-            schema, alg_name = user.schema, user.name
-        except ParamError:
-            schema = Schema(dict(ALL))
+        # a preset is data: the file is not imported here (its code runs only when the preset
+        # is used, see render.algorithm_of). livedyn's parameters are checked now; names of the
+        # file's own take numbers, checked against the file once it is loaded
+        schema = Schema(dict(ALL))
 
     # -- description
     desc = doc.get("description", "")
@@ -385,6 +387,12 @@ def _from_doc(doc: dict, path: Path, text: str) -> Preset:
                    None, "params")
     values = {}
     for k, raw in params.items():
+        if algorithm_file is not None and k not in schema and k.isidentifier():
+            if isinstance(raw, bool) or not isinstance(raw, (int, float)) or raw != raw:
+                raise fail(f"params.{k} = {raw!r}: expected a number (a parameter of the "
+                           "algorithm file's own)", "params", k)
+            values[k] = float(raw)
+            continue
         if k not in schema:
             what = f"a parameter of {alg_name}" if algorithm_file is None else "a parameter"
             raise fail(f"params.{k} = {raw!r}: not {what}, expected one of "
@@ -448,8 +456,9 @@ def dumps(preset: Preset, path=None) -> str:
         schema = preset.schema()
     except ParamError as e:
         raise PresetError(f"{where}: {e}") from None
+    own = [k for k in preset.values if k not in schema and preset.algorithm_file is not None]
     for k in preset.values:
-        if k not in schema:
+        if k not in schema and k not in own:
             raise PresetError(f"{where}: params.{k}: not a parameter of {preset.algorithm}, "
                               f"expected one of {', '.join(schema.names())}")
     top = {"preset_format": FORMAT_VERSION}
@@ -481,6 +490,11 @@ def dumps(preset: Preset, path=None) -> str:
             raise PresetError(f"{where}: {p.name} = {v!r}: cannot be written as TOML "
                               f"({' '.join(str(e).split())})") from None
         lines.append(f"{entry:<26} # {_comment(p)}")
+    for k in own:  # the algorithm file's own parameters, checked when it is loaded
+        v = float(preset.values[k])
+        if not math.isfinite(v):
+            raise PresetError(f"{where}: {k} = {v!r}: expected a finite number")
+        lines.append(f"{tomli_w.dumps({k: v}).rstrip(chr(10)):<26} # the file's own")
     try:
         head = tomli_w.dumps(top)
     except (TypeError, ValueError) as e:
@@ -507,6 +521,12 @@ def save(preset: Preset, path) -> Path:
     problem = _files.target_problem(target, "preset file")
     if problem:
         raise PresetError(f"{name}: {problem}")
+    from .outputs import OutputError, check_target
+
+    try:  # only a regular file or a new name (never a FIFO or a device)
+        check_target(target, "preset")
+    except OutputError as e:
+        raise PresetError(str(e)) from None
     text = dumps(preset, target)
     # Self-check: what we write must read back to the same values.
     back = _from_doc(tomllib.loads(text), target, text)

@@ -35,11 +35,14 @@ class Processor:
         Main channels, 1 to 8.
     key_channels : int
         Channels of the external key input (0: no external key).
+    warm : bool
+        Run the kernel once now on scratch copies (compiling or loading it), not at first use.
     **params
         Initial parameter values by name, as numbers or text (``ratio="4:1"``).
     """
 
-    def __init__(self, algorithm, samplerate, channels, key_channels=0, **params):
+    def __init__(self, algorithm, samplerate, channels, key_channels=0, *, warm=True,
+                 **params):
         self.algorithm = algorithms.get(algorithm)
         self.schema = self.algorithm.schema
         samplerate = float(samplerate)
@@ -84,7 +87,8 @@ class Processor:
         self.ring = np.zeros((ring_len, L.RING_COLS_PER_CHANNEL * self.channels), dtype=np.float64)
         self._no_trace = np.zeros((L.NTRACE, 0, ncols), dtype=np.float64)
         self.reset()
-        self._warm()
+        if warm:  # the load-time checks build one cold: nothing of a user file runs unchecked
+            self._warm()
 
     def _warm(self):
         """Compile (or load) the kernel now, on a scratch copy of the state, not at first use."""

@@ -52,12 +52,23 @@ def parse_setting(text):
     return name.strip(), value.strip()
 
 
+#: Where ``algorithm_of`` says which algorithm file a preset is about to run (a callable
+#: taking one line, or None); the command line points it at standard output.
+announce = None
+_announced = set()
+
+
 def algorithm_of(setup: Setup, preset=None) -> str:
     """The algorithm (a built-in name or a file's path) that a Setup and its loaded preset
-    name; RenderError when --algorithm and the preset disagree."""
+    name; RenderError when --algorithm and the preset disagree. A preset naming an algorithm
+    file is announced (:data:`announce`) before the file is loaded: its code will run."""
     algo = setup.algorithm
     if preset is not None:
         if preset.algorithm_file is not None:
+            if announce is not None and preset.algorithm_file not in _announced:
+                _announced.add(preset.algorithm_file)
+                announce(f"preset {setup.preset} runs the algorithm file "
+                         f"{preset.algorithm_file} (Python code, with your permissions)")
             user = loader.get(str(preset.algorithm_file))
             preset.checked(user.schema)
             if algo and Path(algo).resolve() != Path(preset.algorithm_file).resolve():
@@ -129,6 +140,10 @@ class Summary:
     automation_events: int = 0
     parameters: dict = field(default_factory=dict)
     notes: list = field(default_factory=list)  # one line each: how the key was adapted
+    #: Output blocks that held a non-finite sample and were written as silence (the last
+    #: safety stage, as live)
+    muted_blocks: int = 0
+    muted_frames: int = 0
 
     def as_dict(self):
         return dict(self.__dict__)
@@ -165,6 +180,9 @@ class Summary:
             yield f"  {self.nonfinite_inputs} non-finite input samples were replaced by 0"
         for note in self.notes:
             yield f"  note: {note}"
+        if self.muted_blocks:
+            yield (f"  {self.muted_blocks} output blocks ({self.muted_frames} frames) held "
+                   "non-finite samples and were muted")
 
 
 class _KeyAlongside:
@@ -391,10 +409,21 @@ def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_lat
         def safety(y):
             safety_stage(y, len(y), y.shape[1], safe, 0, safety_stats)
             return y
+    muted = [0, 0]  # blocks, frames
+
+    def last_stage(y):
+        # always on, as live: a block holding a NaN or an infinity is written as silence
+        if not np.isfinite(y).all():
+            y = np.zeros_like(y)
+            muted[0] += 1
+            muted[1] += len(y)
+        return y
+
     try:
         with WavWriter(out_path, int(fs), ch, subtype, frames_hint=frames) as out:
             def emit(y):
                 nonlocal to_skip
+                y = last_stage(y)
                 if to_skip:
                     cut = min(to_skip, len(y))
                     y = y[cut:]
@@ -469,4 +498,5 @@ def _run(src, key, proc, auto, in_path, out_path, trace_dir, blocksize, keep_lat
         input_meters=meters_in.snapshot(), output_meters=meters_out.snapshot(),
         nonfinite_inputs=proc.nonfinite_count, seconds=time.perf_counter() - t0,
         automation_events=len(auto) if auto is not None else 0, parameters=proc.describe(),
+        muted_blocks=muted[0], muted_frames=muted[1],
     )

@@ -141,6 +141,9 @@ def write_template(name, stage="gain_curve", example=None):
     With ``example`` (one of :func:`example_names`) the file is a copy of that shipped example
     instead of a starting template."""
     path = Path(name)
+    if not str(name).strip() or path.name in ("", ".", ".."):
+        raise ParamError(f"new-algorithm {str(name)[:80]!r}: expected a file name such as "
+                         "my_compressor (or a path ending in one)")
     if path.suffix != ".py":
         path = path.with_name(path.name + ".py")
     stem = path.stem

@@ -49,8 +49,10 @@ compiling, :mod:`livedyn.checks` runs the file on test signals and refuses it if
 """
 from __future__ import annotations
 
+import dataclasses
 import enum
 import hashlib
+import os
 import importlib.util
 import re
 import sys
@@ -126,8 +128,12 @@ def compile_file(path, source, digest):
 
 
 def _build(path, source, digest):
-    from .builtin import Algorithm
+    module = _import(path, source, digest)
+    return _from_module(path, module, digest)
 
+
+def _import(path, source, digest):
+    """Run the file's top level as a module (after the static refusals)."""
     try:
         compile(source, str(path), "exec")
     except SyntaxError as e:
@@ -146,6 +152,11 @@ def _build(path, source, digest):
         raise UserAlgorithmError(f"{_where(path, e)}: {type(e).__name__}: {first}",
                                  traceback.format_exc()) from None
     sys.modules[modname] = module
+    return module
+
+
+def _from_module(path, module, digest):
+    from .builtin import Algorithm
 
     fns = {}
     for stage in STAGES:

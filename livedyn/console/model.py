@@ -596,6 +596,17 @@ class ConsoleModel(CommandLine, Metering):
             pr = presets.Preset(name, values, desc)
         slot = self.active.upper()
 
+        if source is not None:
+            from ..outputs import OutputError, Outputs
+
+            g = Outputs()  # never save over the algorithm file itself
+            g.read("algorithm", source)
+            g.write("save", target)
+            try:
+                g.check()
+            except OutputError as e:
+                raise ConsoleError(str(e)) from None
+
         def write():
             presets.save(pr, target)
             self.info(f"saved slot {slot} to {target}")

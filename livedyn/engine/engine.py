@@ -61,12 +61,20 @@ class _Recording:
     def __init__(self):
         self.writers = None
         self.lock = threading.Lock()
+        self.error = None  # one line: the first write or close that failed (disk full, ...)
 
     def close(self):
+        """Close every writer (each one even when another fails); returns ``self.error``."""
+        from ..wavio import WavError
+
         with self.lock:
             writers, self.writers = self.writers, None
         for w in (writers or {}).values():
-            w.close()
+            try:
+                w.close()
+            except (WavError, OSError) as e:
+                self.error = self.error or str(e).splitlines()[0]
+        return self.error
 
 
 def _abandon_engine(stream, stop_evt, rec, threads):
@@ -416,6 +424,7 @@ class Engine:
             [self.jobs, self.main_ring, self.key_ring, self.tap_ring]
         self._mem.slots = self._slot_owner
         self._mem.extra = self._extra
+        self.record_error = None  # one line once a recording write failed (disk full, ...)
 
     @property
     def job(self):
@@ -537,11 +546,24 @@ class Engine:
                 self._snapshot_meters = {"in": self.meters_in.snapshot(),
                                          "out": self.meters_out.snapshot()}
             writers = self._rec.writers
-            if writers is not None:
-                writers["main"].write(xin)
-                if self.kch:
-                    writers["key"].write(key)
-                writers["out"].write(yout)
+            if writers is not None and self.record_error is None:
+                self._record(writers, xin, key, yout)
+
+    def _record(self, writers, xin, key, yout):
+        """Append to the take; a failed write (disk full, ...) ends the recording, keeps what
+        was written readable and posts one line, while the stream plays on."""
+        from ..wavio import WavError
+
+        try:
+            writers["main"].write(xin)
+            if self.kch:
+                writers["key"].write(key)
+            writers["out"].write(yout)
+        except (WavError, OSError) as e:
+            self._rec.error = self._rec.error or str(e).splitlines()[0]
+            self.record_error = f"recording stopped: {self._rec.error}"
+            self._rec.close()
+            self.notice("error", self.record_error)
 
     def _remember(self, blk):
         buf = self._recent
@@ -566,14 +588,20 @@ class Engine:
         return data[:, :self.ch], (data[:, self.ch:] if self.kch else None)
 
     def _open_writers(self):
-        from ..wavio import WavWriter
+        # takes are written under their final names, readable whatever stops the run
+        from ..wavio import TakeWriter
 
         self.record_dir.mkdir(parents=True, exist_ok=True)
         fs = int(self.fs)
-        writers = {"main": WavWriter(self.record_dir / "main.wav", fs, self.ch),
-                   "out": WavWriter(self.record_dir / "out.wav", fs, self.ch)}
-        if self.kch:
-            writers["key"] = WavWriter(self.record_dir / "key.wav", fs, self.kch)
+        writers = {}
+        try:
+            for name, width in (("main", self.ch), ("key", self.kch), ("out", self.ch)):
+                if width:
+                    writers[name] = TakeWriter(self.record_dir / f"{name}.wav", fs, width)
+        except BaseException:
+            for w in writers.values():
+                w.close()
+            raise
         self._rec.writers = writers
         self._recording = True
 
@@ -611,8 +639,14 @@ class Engine:
                 src.close()
         if not any(t.is_alive() for t in self._threads):
             self._rec.close()
+        if self._rec.error and self.record_error is None:
+            self.record_error = f"recording stopped: {self._rec.error}"
         if self._recording:
-            self._write_automation()
+            try:
+                self._write_automation()
+            except (OSError, ValueError) as e:  # disk full: the audio is kept, say what is not
+                self.record_error = self.record_error or (
+                    f"recording: automation not written ({str(e).splitlines()[0]})")
         if self._finalizer is not None:
             self._finalizer.detach()
 

@@ -93,6 +93,7 @@ class LiveSession:
         self.watcher = None
         self.signal_received = None
         self.failure = None
+        self.stats_error = None  # one line when the statistics could not be written
         self.snapshot = None
         self.t_start = None
         self._old_handlers = {}
@@ -256,10 +257,15 @@ class LiveSession:
         snap["realtime_granted"] = bool((snap.get("realtime") or {}).get("granted"))
         snap["server_realtime"] = bool(self.server.realtime_granted) if self.server else None
         self.snapshot = snap
+        if eng.record_error:
+            snap["record_error"] = eng.record_error
         if stats_json:
             from ..files import write_text_atomic
 
-            write_text_atomic(stats_json, json.dumps(snap, indent=2, default=float) + "\n")
+            try:
+                write_text_atomic(stats_json, json.dumps(snap, indent=2, default=float) + "\n")
+            except OSError as e:  # disk full, say: the take and the server still get closed
+                self.stats_error = f"--stats-json {stats_json}: cannot write: {e.strerror or e}"
         if self.failure:
             if self.exit_on_failure:
                 print(f"livedyn: error: {self.failure}", file=sys.stderr, flush=True)
