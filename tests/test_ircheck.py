@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 from numba import types
 
-from livedyn.algorithms.user import UserAlgorithmError, load
+from livedyn.loader import UserAlgorithmError, load
 from livedyn.dsp.abi import job_function
 from livedyn.dsp.ircheck import IRModule, check_native
 

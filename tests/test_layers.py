@@ -16,10 +16,11 @@ PKG = Path(livedyn.__file__).resolve().parent
 # The layers, bottom first (DEVELOPERS.md, "The layers"). A module belongs to the layer of the
 # longest prefix listed here; a module may import its own layer and the ones below.
 LAYERS = [
-    ("bottom", ["livedyn.files", "livedyn.shipped", "livedyn.params"]),
+    ("bottom", ["livedyn.files", "livedyn.shipped", "livedyn.params", "livedyn.outputs",
+                "livedyn.limits"]),
     ("kernels", ["livedyn.dsp"]),
     ("algorithms and Processor", ["livedyn.algorithms", "livedyn.processor"]),
-    ("loader", ["livedyn.checks", "livedyn.loader"]),
+    ("loader", ["livedyn.checks", "livedyn.loader", "livedyn.vet"]),
     ("offline", ["livedyn.render", "livedyn.analysis", "livedyn.presets", "livedyn.meters",
                  "livedyn.wavio", "livedyn.automation", "livedyn.demo", "livedyn.port"]),
     ("engine", ["livedyn.engine"]),
