@@ -74,7 +74,9 @@ def test_disk_full_while_recording_keeps_the_take_and_says_so(small_disk, tmp_pa
     # the stream played on: status lines until the end of the run
     status = [float(ln.split()[0]) for ln in r.stdout.splitlines()
               if re.match(r"^\s*\d+\.\d s  in ", ln)]
-    assert status and status[-1] >= 2.0 > t_told
+    # (the proof that it played on is the block count below; on a loaded machine the notice
+    # and the last status line can share their second)
+    assert status and status[-1] >= 2.0 and status[-1] >= t_told
     err = r.stderr.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("livedyn: error: recording stopped"), err
     lengths = []

@@ -96,7 +96,11 @@ def test_a_signal_stops_the_run_in_order_and_keeps_the_whole_take(tmp_path, sig)
           f"when the statistics were taken")
     # nothing the callback produced is missing, and the take covers the run's time
     assert all(v * FS >= stats["frames"] for v in lengths.values())
-    assert all(v >= elapsed - 0.1 for v in lengths.values()), (lengths, elapsed)
+    # and nothing short of the time the stream ran: the wall-clock time, or what the dummy
+    # server delivered when it fell behind wall time on a loaded machine (its pace is not the
+    # take's to keep; every frame the callback produced is checked just above)
+    ran = min(elapsed, stats["frames"] / FS)
+    assert all(v >= ran - 0.1 for v in lengths.values()), (lengths, elapsed, ran)
     auto = Automation.load(rec / "automation.txt", algorithms.get("ducker").schema)
     assert auto.samplerate == FS and len(list(auto)) > 0
     assert (tmp_path / "stats.json").exists()
