@@ -426,8 +426,11 @@ def _bad_blocks(late, flags, delivered, seconds):
     return int(np.count_nonzero(late | (flags != 0))) + lost, lost
 
 
-def test_native_callback_shrugs_off_interpreter_load_a_python_callback_does_not(jack_server):
-    seconds = 10.0
+IDLE_SANE = 0.05  # share of bad blocks above which an idle stream says the machine is sick
+
+
+def _native_under_load(seconds):
+    """The native engine's bad blocks in an idle window, then under interpreter load."""
     x = (0.1 * np.random.default_rng(1).standard_normal((4 * FS, 2))).astype(np.float32)
     proc = livedyn.Processor("compressor", FS, 2, threshold=-30, ratio=4, lookahead=5)
     eng = Engine(proc, BS, main_source=ArraySource(x, loop=True))
@@ -436,21 +439,47 @@ def test_native_callback_shrugs_off_interpreter_load_a_python_callback_does_not(
         # the machine's own noise floor, with no load in the process (a shared VM has late
         # wake-ups of its own: cyclictest on this machine saw up to 6 ms)
         _, (a0, a1), dur0 = _window(eng, seconds / 2)
+        el0, iv0, fl0 = _ring_window(eng, a0, a1)
+        idle, _ = _bad_blocks(_late_per_block(el0, iv0), fl0, a1 - a0, dur0)
+        if idle > IDLE_SANE * dur0 * FS / BS:
+            return dict(idle=idle, dur0=dur0, sick=True)
         with _Load() as load:
             d, (b0, b1), dur = _window(eng, seconds)
         assert eng.watch(), eng.error
-    el0, iv0, fl0 = _ring_window(eng, a0, a1)
-    idle, _ = _bad_blocks(_late_per_block(el0, iv0), fl0, a1 - a0, dur0)
     el, iv, fl = _ring_window(eng, b0, b1)
     n_late = _late_per_block(el, iv)
     native, native_lost = _bad_blocks(n_late, fl, b1 - b0, dur)
+    return dict(idle=idle, dur0=dur0, sick=False, d=d, b=(b0, b1), dur=dur, el=el, fl=fl,
+                n_late=n_late, native=native, native_lost=native_lost, compiled=load.compiled)
+
+
+def test_native_callback_shrugs_off_interpreter_load_a_python_callback_does_not(jack_server):
+    seconds = 10.0
+    # A machine that cannot hold an idle 64-frame stream (a shared VM whose neighbour takes
+    # its CPUs: the dummy server itself then skips cycles) makes the comparison meaningless.
+    # Measure again, up to three times; if the idle stream never holds, say so and skip.
+    tries = []
+    for _ in range(3):
+        m = _native_under_load(seconds)
+        tries.append(m["idle"])
+        if not m["sick"]:
+            break
+        print(f"idle stream: {m['idle']} bad blocks in {m['dur0']:.1f} s; measuring again")
+    else:
+        pytest.skip(f"this machine could not hold an idle {BS}-frame stream (bad blocks in "
+                    f"{seconds / 2:g} s idle windows: {tries}, more than "
+                    f"{100 * IDLE_SANE:g} %): the load comparison would be meaningless")
+    idle, dur0, d, dur = m["idle"], m["dur0"], m["d"], m["dur"]
+    b0, b1 = m["b"]
+    el, fl, n_late = m["el"], m["fl"], m["n_late"]
+    native, native_lost = m["native"], m["native_lost"]
     loadp = {q: float(np.percentile(el, q)) / PERIOD_NS for q in (50, 99, 99.9)}
     loadp["max"] = float(el.max()) / PERIOD_NS
     print(f"\nrealtime {jack_server.realtime_granted}; native: {b1 - b0} blocks in {dur:.2f} s, "
           f"{int(d[cb.S_LATE])} late, {int(d[cb.S_FLAGGED])} flagged, {native_lost} lost -> "
-          f"{native} bad; {load.compiled} compilations; callback load "
+          f"{native} bad; {m['compiled']} compilations; callback load "
           + ", ".join(f"{k}: {100 * v:.2f} %" for k, v in loadp.items()))
-    assert load.compiled > 0
+    assert m['compiled'] > 0
 
     # the same kernel in a plain sounddevice stream with a Python callback, same load
     sd = st._sd()
