@@ -146,13 +146,16 @@ DUCK_CHANGES = [(0.7, "threshold", -45.0), (1.0, "range", 20.0), (1.3, "release"
                 (1.6, "threshold", -25.0), (1.9, "range", 6.0), (2.2, "release", 40.0)]
 
 
-def _live_run(rec, algorithm, settings, changes, main, key, kch):
+def _live_run(rec, algorithm, settings, changes, main, key, kch, precision="float64"):
     """One live run of the processor on the sources, recorded, with changes from a thread."""
-    proc = livedyn.Processor(algorithm, FS, 2, kch, **settings)
+    from livedyn.dsp.precision import job_for
+
+    proc = livedyn.Processor(algorithm, FS, 2, kch, precision=precision, **settings)
     eng = Engine(proc, BS, main_source=ArraySource(main),
                  key_source=ArraySource(key) if key is not None else None, record_dir=rec)
-    # The kernel behind the callback's one indirect call (see test 2) is one of the job cfuncs.
-    jobs = (cb.job_dynamics.address, cb.job_limiter.address)
+    # The kernel behind the callback's one indirect call (see test 2) is one of the job cfuncs,
+    # of the processor's precision.
+    jobs = (job_for("dynamics", precision).address, job_for("limiter", precision).address)
     assert eng.table[0, 0] in jobs
     assert all(a in jobs for a in eng.extra_table[:eng.ud[cb.U_NEXTRA], 0])
     seqs = []
@@ -172,8 +175,11 @@ def _live_run(rec, algorithm, settings, changes, main, key, kch):
     return proc, eng, snap, seqs, rec
 
 
-@pytest.mark.parametrize("algorithm", ["compressor", "ducker"])
-def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_path, algorithm):
+@pytest.mark.parametrize("algorithm,precision", [("compressor", "float64"),
+                                                 ("ducker", "float64"),
+                                                 ("compressor", "float32")])
+def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_path, algorithm,
+                                                            precision):
     rng = np.random.default_rng(7)
     seconds = 2.6
     main = _bursts(rng, seconds, 2)
@@ -187,7 +193,7 @@ def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_pat
         # A run in which the machine starved the feeder or the recorder (input not as the
         # source, or tap blocks dropped) says nothing about the processing: run it again.
         proc, eng, snap, seqs, rec = _live_run(tmp_path / f"live{attempt}", algorithm, settings,
-                                              changes, main, key, kch)
+                                              changes, main, key, kch, precision)
         xin = _wav(rec / "main.wav")
         if snap["tap_dropped_blocks"] == 0 and np.array_equal(xin[:len(main)], main):
             break
@@ -203,7 +209,8 @@ def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_pat
     for seq, f in zip(seqs, frames):
         assert tuple(eng.seqlog[(seq // 2) % len(eng.seqlog)]) == (seq, f)
 
-    setup = Setup(algorithm=algorithm, settings=[(k, str(v)) for k, v in settings.items()])
+    setup = Setup(algorithm=algorithm, settings=[(k, str(v)) for k, v in settings.items()],
+                  precision=precision)
     render(rec / "main.wav", tmp_path / "offline.wav", setup,
            key_path=(rec / "key.wav") if key is not None else None,
            automation_path=rec / "automation.txt", blocksize=BS, keep_latency=True,

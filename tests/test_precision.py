@@ -185,3 +185,32 @@ def test_render_takes_the_precision_from_the_option_or_a_setting(tmp_path):
     assert r.returncode != 0
     assert r.stderr.strip().splitlines()[-1].endswith("expected float64 or float32")
     assert not (tmp_path / "x.wav").exists()
+
+
+def test_a_live_change_of_precision_is_a_primed_crossfaded_swap(jack_server):
+    from livedyn.engine import callback as cb
+    from livedyn.engine.engine import ArraySource, Engine
+    from tests.waiting import stream_until
+
+    x = _noise_bursts(2 * FS)
+    proc = livedyn.Processor("compressor", FS, 2, threshold=-30, lookahead=2)
+    eng = Engine(proc, 64, main_source=ArraySource(x, loop=True))
+    eng.start()
+    try:
+        stream_until(eng, 0.5)
+        for want in ("float32", "float64", "float32"):
+            swaps0 = int(eng.stats[cb.S_SWAPS])
+            info = eng.swap(eng.proc.algorithm, precision=want)
+            assert info["precision"] == want and eng.proc.precision == want
+            slot = int(eng.ud[cb.U_KSLOT])
+            assert eng.table[slot, 0] == prec.job_for("dynamics", want).address
+            assert int(eng.stats[cb.S_SWAPS]) == swaps0 + 1
+            assert eng.get("threshold") == -30.0  # values carried over
+            frames = int(eng.stats[cb.S_FRAMES])
+            stream_until(eng, frames / FS + 0.2)
+        assert int(eng.stats[cb.S_NONFINITE_BLOCKS]) == 0
+        with pytest.raises(ParamError, match="expected float64 or float32"):
+            eng.swap(eng.proc.algorithm, precision="float16")
+        assert eng.proc.precision == "float32"  # the refused change left it running
+    finally:
+        eng.stop()
