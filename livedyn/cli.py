@@ -6,6 +6,7 @@ overwritten by a command that fails.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import math
 import sys
@@ -313,6 +314,68 @@ def cmd_port_kit(args):
     print(f"  C reference: {m['c_stages']}")
     print(f"  build and check: make -C {args.out}/c check   (bit for bit: make -C {args.out}/c "
           "exact)")
+    return 0
+
+
+def cmd_precision_audit(args):
+    """Run settings in float64 and float32 and report what differs (livedyn/audit.py)."""
+    from . import audit as au
+    from .render import Setup, parse_setting
+
+    plot = args.plot
+    if plot is not None:
+        from .analysis import have_matplotlib
+
+        if not have_matplotlib():
+            raise CliError("--plot: needs matplotlib (pip install matplotlib)")
+        if not str(plot).lower().endswith(".png"):
+            raise CliError(f"--plot {plot}: expected a .png file name")
+        from .outputs import Outputs
+
+        g = Outputs()
+        for f in args.input or []:
+            g.read("IN.wav", f)
+        g.read("--key", args.key)
+        if args.algorithm and str(args.algorithm).endswith(".py"):
+            g.read("--algorithm", args.algorithm)
+        g.write("--plot", plot)
+        g.check()
+    setups = []
+    if args.every:
+        if args.algorithm or args.preset or args.set:
+            raise CliError("--every audits every shipped preset and example file; leave out "
+                           "--algorithm, --preset and --set")
+        from .presets import list_presets, presets_dir
+        from .shipped import examples_folder
+
+        for name, _, _ in list_presets(presets_dir()):
+            setups.append(Setup(preset=name))
+        for f in sorted(examples_folder().glob("*.py")):
+            setups.append(Setup(algorithm=str(f)))
+    else:
+        base = _setup_from(args)
+        setups.append(Setup(algorithm=base.algorithm, preset=base.preset,
+                            settings=[s for s in base.settings
+                                      if s[0].strip().lower() != "precision"]))
+    over, audits = [], []
+    for setup in setups:
+        a = au.audit(setup, samplerate=args.samplerate, channels=args.channels,
+                     inputs=args.input or (), key_path=args.key)
+        if setup.algorithm and setup.algorithm.endswith(".py"):
+            a.label = Path(setup.algorithm).name
+        audits.append(a)
+        print(au.format_audit(a), flush=True)
+        if not a.within:
+            over.append(a.label)
+    if plot is not None:
+        au.plot(audits[0] if len(audits) == 1 else
+                au.Audit("every shipped preset and example (test programme)", args.samplerate,
+                         [dataclasses.replace(a.rows[0], signal=a.label) for a in audits]),
+                plot)
+        print(f"plot written to {plot}")
+    if over:
+        print(f"over the {au.BOUND_DB:g} dB bound: {', '.join(over)}")
+        return 1
     return 0
 
 
@@ -954,6 +1017,29 @@ def build_parser():
                     help="also run this file after the test programme (same rate; mono or "
                          "the kit's channels; its first channel keys), repeatable")
     pk.set_defaults(func=cmd_port_kit)
+
+    pa = sub.add_parser("precision-audit", help="float32 against float64: what the single "
+                                                "precision changes",
+                        description="Run the same settings in float64 and in float32 over the "
+                                    "synthesised test programme (and your WAV files) and "
+                                    "report the largest and rms difference of the gain (dB) "
+                                    "and the output (dBFS), where the gain differs most, and "
+                                    "each stage's largest difference. Exit status 1 when the "
+                                    "gain differs by more than the bound (0.01 dB).")
+    _add_setup(pa)
+    pa.add_argument("input", metavar="IN.wav", nargs="*",
+                    help="also audit these files (after the test programme)")
+    pa.add_argument("--key", metavar="KEY.wav",
+                    help="key input for the files, when the algorithm takes one")
+    pa.add_argument("--samplerate", type=float, default=48000.0,
+                    help="Hz of the test programme (default 48000)")
+    pa.add_argument("--channels", type=int, default=2, choices=range(1, 9), metavar="N",
+                    help="main channels of the test programme, 1 to 8 (default 2)")
+    pa.add_argument("--every", action="store_true",
+                    help="audit every shipped preset and every example algorithm file")
+    pa.add_argument("--plot", metavar="FILE.png",
+                    help="draw the differences over time (needs matplotlib)")
+    pa.set_defaults(func=cmd_precision_audit)
 
     d = sub.add_parser("demo", help="the rehearsal demo: live ducking, then offline renders",
                        description="The built-in rehearsal scenario (drum loop, music bed, "
