@@ -149,14 +149,14 @@ def schedule_text(algorithm):
     return f"livedyn-automation 1 samplerate={FS}\n" + body
 
 
-def make(algorithm):
+def make(algorithm, precision="float64"):
     if algorithm == "ducker":
-        return livedyn.Processor("ducker", FS, 2, key_channels=1)
-    return livedyn.Processor(algorithm, FS, 2)
+        return livedyn.Processor("ducker", FS, 2, key_channels=1, precision=precision)
+    return livedyn.Processor(algorithm, FS, 2, precision=precision)
 
 
-def replay(algorithm, automation, x, key, blocksize):
-    proc = make(algorithm)
+def replay(algorithm, automation, x, key, blocksize, precision="float64"):
+    proc = make(algorithm, precision)
     return run_with_automation(proc.process, proc.set, x, key, automation, blocksize)
 
 
@@ -168,8 +168,11 @@ def signals():
     return {"main": noise_bursts(11, 2), "key": noise_bursts(12, 1)}
 
 
+@pytest.mark.parametrize("precision", ["float64", "float32"])
 @pytest.mark.parametrize("algorithm", ALGORITHMS)
-def test_replay_is_bit_identical_across_block_sizes(algorithm, signals, tmp_path):
+def test_replay_is_bit_identical_across_block_sizes(algorithm, signals, tmp_path, precision):
+    # automation that moves (ramps) and stops (steps, then nothing): the glides run and go
+    # idle, and the output does not depend on where the blocks fall, in either precision
     path = tmp_path / f"{algorithm}.auto"
     path.write_text(schedule_text(algorithm), encoding="utf-8")
     auto = Automation.load(path, make(algorithm).schema)
@@ -177,19 +180,19 @@ def test_replay_is_bit_identical_across_block_sizes(algorithm, signals, tmp_path
 
     x = signals["main"]
     key = signals["key"] if algorithm == "ducker" else None
-    ref = replay(algorithm, auto, x, key, REFERENCE_BLOCKSIZE)
+    ref = replay(algorithm, auto, x, key, REFERENCE_BLOCKSIZE, precision)
     assert ref.shape == x.shape and ref.dtype == np.float32
     assert np.isfinite(ref).all()
     for bs in BLOCKSIZES:
-        y = replay(algorithm, auto, x, key, bs)
+        y = replay(algorithm, auto, x, key, bs, precision)
         assert y.tobytes() == ref.tobytes(), f"blocksize {bs} differs from {REFERENCE_BLOCKSIZE}"
     # every sample its own block, on the first part (the ramps and the first steps)
-    y1 = replay(algorithm, auto, x[:FIRST], None if key is None else key[:FIRST], 1)
+    y1 = replay(algorithm, auto, x[:FIRST], None if key is None else key[:FIRST], 1, precision)
     assert y1.tobytes() == ref[:FIRST].tobytes(), "blocksize 1 differs"
 
     # The automation does something, and nothing before its first event
     # (automation format specification: an event at frame F acts from frame F on).
-    plain = replay(algorithm, None, x, key, REFERENCE_BLOCKSIZE)
+    plain = replay(algorithm, None, x, key, REFERENCE_BLOCKSIZE, precision)
     first = auto.events[0][0]
     assert first > 0
     assert plain[:first].tobytes() == ref[:first].tobytes()

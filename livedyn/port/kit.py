@@ -316,6 +316,10 @@ def write_kit(folder, setup, samplerate=48000.0, channels=2, blocksizes=BLOCKSIZ
         "frames": frames,
         "block_sizes": list(blocksizes),
         "latency_samples": int(proc.latency_samples),
+        "precision": proc.precision,
+        "precision_note": "the arithmetic of the kernel that made the vectors; the C "
+                          "reference computes in double, so a float32 kit is met within "
+                          "the tolerances (make check), not bit for bit (make exact)",
         "programme": parts,
         "stages": stages,
         "db_floor_for_comparison": DB_FLOOR,
