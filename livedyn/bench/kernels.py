@@ -209,18 +209,19 @@ def check_case(s, frames, blocksize):
     )
 
 
-def _compare(y_ref, y, n, label):
-    """Largest difference, agreement, and a one-line mismatch note (None when it agrees)."""
+def _compare(y_ref, y, n, label, tolerance=TOLERANCE):
+    """Largest difference, agreement (within ``tolerance``), and a one-line mismatch note (None
+    when it agrees)."""
     diff = np.abs(y_ref[:n].astype(np.float64) - y[:n].astype(np.float64))
     max_diff = float(np.nanmax(diff)) if n else 0.0
     if np.isnan(diff).any():
         max_diff = math.inf
-    ok = max_diff <= TOLERANCE
+    ok = max_diff <= tolerance
     note = None
     if not ok:
         i, c = np.unravel_index(int(np.argmax(np.where(np.isnan(diff), np.inf, diff))), diff.shape)
-        bad = int(np.count_nonzero(~(diff <= TOLERANCE)))
-        note = (f"{bad} samples differ by more than {TOLERANCE:g}; the largest at frame {i}, "
+        bad = int(np.count_nonzero(~(diff <= tolerance)))
+        note = (f"{bad} samples differ by more than {tolerance:g}; the largest at frame {i}, "
                 f"channel {c}: kernel {float(y_ref[i, c]):.9g}, {label} {float(y[i, c]):.9g}")
     return max_diff, ok, note
 
@@ -864,7 +865,12 @@ def _clean_json(v):
     return v
 
 
-def report(rows, info=None, settings=None):
-    """The JSON document of a run: machine info, run settings and the rows (strict JSON)."""
-    return _clean_json(dict(benchmark="kernels", machine=info or machine_info(),
-                            settings=settings or {}, rows=rows))
+def report(rows, info=None, settings=None, precision=None):
+    """The JSON document of a run: machine info, run settings and the rows (strict JSON);
+    with ``precision`` (what :func:`livedyn.bench.bare.run_precision` returns) also its
+    ``bare`` rows (numba against bare C, per precision) and ``curves`` rows."""
+    doc = dict(benchmark="kernels", machine=info or machine_info(), settings=settings or {},
+               rows=rows)
+    if precision is not None:
+        doc.update(bare=precision["bare"], curves=precision["curves"])
+    return _clean_json(doc)
