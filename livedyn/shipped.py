@@ -1,8 +1,8 @@
 """Where livedyn's package data lives, and where it may write a cache.
 
 The shipped presets (``livedyn/presets/``), the example algorithm files
-(``livedyn/examples/``), the C twin's source (``livedyn/bench/ctwin/``), the bare-C loops
-(``livedyn/bench/bare/``) and the bench's curve files (``livedyn/bench/curves/``) are package data:
+(``livedyn/examples/``), the C twin's source (``livedyn/bench/ctwin/``) and the bare-C loops
+(``livedyn/bench/bare/``) are package data:
 they are found through :mod:`importlib.resources`, so that a plain wheel install works from
 any folder, exactly as the source tree does. Nothing is written into the package: builds go to
 the user's cache folder (:func:`cache_folder`).
