@@ -44,7 +44,8 @@ from pathlib import Path
 import numpy as np
 
 from ..shipped import bare_source, cache_folder
-from .kernels import SEED, _compare, _spread, _stderr, _whole_blocks, drive, noise_bursts
+from .kernels import (SEED, _compare, _spread, _stderr, _whole_blocks, checked_runs, drive,
+                      noise_bursts)
 from .sweep import CORE_SHARE, instances_per_core
 
 __all__ = ["BARE_CASES", "BareCase", "Bare", "CURVE_TEMPLATE", "COMP_SETTINGS", "PRECISIONS",
@@ -337,13 +338,8 @@ def run_bare(quick=False, blocksizes=(64, 1024), samplerate=48000, seconds=None,
     """
     progress = progress or (lambda msg: None)
     seconds = (0.5 if quick else 2.0) if seconds is None else float(seconds)
-    repeats = (3 if quick else 9) if repeats is None else int(repeats)
-    blocksizes = [int(b) for b in blocksizes]
-    for b in blocksizes:
-        if b < 1:
-            raise ValueError(f"blocksize = {b}: expected a whole number of frames >= 1")
-    if repeats < 1:
-        raise ValueError(f"repeats = {repeats}: expected >= 1")
+    blocksizes, repeats = checked_runs(blocksizes, (3 if quick else 9) if repeats is None
+                                       else repeats)
     notes = []
     if lib is None:
         from .ctwin import CTwinUnavailable
@@ -552,7 +548,8 @@ def run_curves(quick=False, blocksizes=(64, 1024), samplerate=48000, seconds=Non
 
     progress = progress or (lambda msg: None)
     seconds = (0.5 if quick else 2.0) if seconds is None else float(seconds)
-    repeats = (3 if quick else 9) if repeats is None else int(repeats)
+    blocksizes, repeats = checked_runs(blocksizes, (3 if quick else 9) if repeats is None
+                                       else repeats)
     note = None
     if lib is None:
         from .ctwin import CTwinUnavailable

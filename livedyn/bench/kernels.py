@@ -521,6 +521,17 @@ CTWIN_ROW_KEYS = (
 )
 
 
+def checked_runs(blocksizes, repeats):
+    """The block sizes as a list of whole numbers and the repeats, each checked (>= 1)."""
+    blocksizes = [int(b) for b in blocksizes]
+    for b in blocksizes:
+        if b < 1:
+            raise ValueError(f"blocksize = {b}: expected a whole number of frames >= 1")
+    if int(repeats) < 1:
+        raise ValueError(f"repeats = {repeats}: expected >= 1")
+    return blocksizes, int(repeats)
+
+
 class CPair:
     """One case timed both ways from identical fresh state, each from its native block loop."""
 
@@ -614,13 +625,8 @@ def run_ctwin(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, 
     """
     progress = progress or (lambda msg: None)
     seconds = (1.0 if quick else DEFAULT_SECONDS) if seconds is None else float(seconds)
-    repeats = (5 if quick else 15) if repeats is None else int(repeats)
-    blocksizes = [int(b) for b in blocksizes]
-    for b in blocksizes:
-        if b < 1:
-            raise ValueError(f"blocksize = {b}: expected a whole number of frames >= 1")
-    if repeats < 1:
-        raise ValueError(f"repeats = {repeats}: expected >= 1")
+    blocksizes, repeats = checked_runs(blocksizes, (5 if quick else 15) if repeats is None
+                                       else repeats)
     info = machine_info()
     note = None
     if lib is None:

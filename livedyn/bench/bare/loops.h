@@ -13,6 +13,15 @@ static inline REAL SFX(bare_flush)(REAL v)
     return v;
 }
 
+/* Frame n of the stereo input x into row (non-finite samples replaced by 0, as the kernels do). */
+static inline void SFX(bare_take)(const float *x, i64 n, REAL *row)
+{
+    for (int c = 0; c < 2; c++) {
+        REAL v = RL(x[2 * n + c]);
+        row[c] = isfinite(v) ? v : RL(0.0);
+    }
+}
+
 /* Soft-knee compressor curve [1] eq. (4) as gain in dB (knee > 0: init checks). */
 static inline REAL SFX(bare_curve)(REAL x_db, REAL thr, REAL slope, REAL knee)
 {
@@ -24,6 +33,16 @@ static inline REAL SFX(bare_curve)(REAL x_db, REAL thr, REAL slope, REAL knee)
         return -slope * e * e / (RL(2.0) * knee);
     }
     return -slope * d;
+}
+
+/* Smooth branching [1] eq. (16) on the gain in dB (attack toward more attenuation), flushed. */
+static inline REAL SFX(bare_branch)(REAL y, REAL gc, REAL a_att, REAL a_rel)
+{
+    if (gc < y)
+        y = a_att * y + (RL(1.0) - a_att) * gc;
+    else
+        y = a_rel * y + (RL(1.0) - a_rel) * gc;
+    return SFX(bare_flush)(y);
 }
 
 /* ---- compressor (and its costlier-curve copy) ------------------------------------------ */
@@ -62,25 +81,15 @@ static inline void SFX(bare_comp_run)(void *sv, const double *p, const float *x,
     REAL y = s->y, gr = RL(0.0);
     i64 w = s->w;
     for (i64 n = 0; n < frames; n++) {
-        REAL v0 = RL(x[2 * n]), v1 = RL(x[2 * n + 1]);
-        if (!isfinite(v0))
-            v0 = RL(0.0);
-        if (!isfinite(v1))
-            v1 = RL(0.0);
-        s->ring[w][0] = v0;
-        s->ring[w][1] = v1;
-        REAL a0 = FABS(v0), a1 = FABS(v1);
+        SFX(bare_take)(x, n, s->ring[w]);
+        REAL a0 = FABS(s->ring[w][0]), a1 = FABS(s->ring[w][1]);
         REAL lv = a1 > a0 ? a1 : a0;
         REAL x_db = lv <= RL(LEVEL_FLOOR_AMP) ? RL(LEVEL_FLOOR_DB)
                                               : RL(DB_PER_NEPER_AMP) * LOG(lv);
         REAL gc = SFX(bare_curve)(x_db, thr, slope, knee);
         if (costly) /* the costlier curve: one tanh and one log more per sample */
             gc = gc - RL(1e-6) * LOG(RL(2.0) + TANH(x_db * RL(0.05)));
-        if (gc < y)
-            y = a_att * y + (RL(1.0) - a_att) * gc;
-        else
-            y = a_rel * y + (RL(1.0) - a_rel) * gc;
-        y = SFX(bare_flush)(y);
+        y = SFX(bare_branch)(y, gc, a_att, a_rel);
         if (-y > gr)
             gr = -y;
         REAL g = EXP(RL(LN10_OVER_20) * (y + mk));
@@ -174,14 +183,8 @@ void SFX(bare_limiter_block)(void *sv, const double *p, const float *x, const fl
     REAL g = s->g, box = s->box, g_min = RL(1.0);
     i64 w = s->w, t = s->t, head = s->head, len = s->len;
     for (i64 n = 0; n < frames; n++, t++) {
-        REAL v0 = RL(x[2 * n]), v1 = RL(x[2 * n + 1]);
-        if (!isfinite(v0))
-            v0 = RL(0.0);
-        if (!isfinite(v1))
-            v1 = RL(0.0);
-        s->ring[w][0] = v0;
-        s->ring[w][1] = v1;
-        REAL a0 = FABS(v0), a1 = FABS(v1);
+        SFX(bare_take)(x, n, s->ring[w]);
+        REAL a0 = FABS(s->ring[w][0]), a1 = FABS(s->ring[w][1]);
         REAL r0 = a0 > ceil_lin ? ceil_lin / a0 : RL(1.0);
         REAL r1 = a1 > ceil_lin ? ceil_lin / a1 : RL(1.0);
         REAL r = r1 < r0 ? r1 : r0;
@@ -299,24 +302,19 @@ void SFX(bare_ducker_block)(void *sv, const double *p, const float *x, const flo
         if (gc < -range)
             gc = -range;
         if (gc > y && hold > RL(0.0))
-            hold -= RL(1.0);
+            hold -= RL(1.0); /* hold delays release; y is already flushed */
         else {
             if (gc <= y)
                 hold = hold_n;
-            if (gc < y)
-                y = a_att * y + (RL(1.0) - a_att) * gc;
-            else
-                y = a_rel * y + (RL(1.0) - a_rel) * gc;
+            y = SFX(bare_branch)(y, gc, a_att, a_rel);
         }
-        y = SFX(bare_flush)(y);
         if (-y > gr)
             gr = -y;
         REAL g = EXP(RL(LN10_OVER_20) * (y + mk));
+        REAL v[2];
+        SFX(bare_take)(x, n, v);
         for (int c = 0; c < 2; c++) {
-            REAL v = RL(x[2 * n + c]);
-            if (!isfinite(v))
-                v = RL(0.0);
-            REAL o = v * g;
+            REAL o = v[c] * g;
             if (o > ceil_lin)
                 o = ceil_lin;
             else if (o < -ceil_lin)
