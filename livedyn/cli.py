@@ -103,7 +103,8 @@ def _setup_from(args):
     from .render import Setup, parse_setting
 
     return Setup(algorithm=args.algorithm, preset=args.preset,
-                 settings=[parse_setting(s) for s in (args.set or [])])
+                 settings=[parse_setting(s) for s in (args.set or [])],
+                 precision=getattr(args, "precision", None))
 
 
 def cmd_render(args):
@@ -587,7 +588,8 @@ def _cmd_run(args):
         output_device=args.output_device, main_inputs=main_in, key_inputs=key_in, outputs=outs,
         main_source=main_src, key_source=key_src, record_dir=args.record, monitor=args.monitor,
         output_level_db=out_level)
-    print(f"{proc.algorithm.name}: " +
+    print(f"{proc.algorithm.name}" + (f" ({proc.precision})" if proc.precision != "float64"
+                                      else "") + ": " +
           ", ".join(f"{k} {v}" for k, v in proc.describe().items()), flush=True)
     session.open()
     server, eng = session.server, session.engine
@@ -871,6 +873,9 @@ def _add_setup(p):
                    help="set a parameter in its own unit (dBFS, dB, ms, Hz, ratio), e.g. --set "
                         "threshold=-18 --set ratio=4:1; a unique prefix names it (thr=-18); "
                         "repeatable, applied after the preset")
+    p.add_argument("--precision", choices=("float64", "float32"), default=None,
+                   help="arithmetic of the kernel: float64 (default) or float32, the single "
+                        "precision most port targets use (also --set precision=float32)")
 
 
 def build_parser():

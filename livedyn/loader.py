@@ -27,15 +27,21 @@ _CACHE = {}  # (path, digest, checked) -> Algorithm: each version is compiled an
 _CACHE_LOCK = threading.Lock()
 
 
-def load(path, check=True) -> Algorithm:
+def load(path, check=True, precision="float64") -> Algorithm:
     """Load, compile and check a user algorithm file; returns an Algorithm.
 
-    Raises UserAlgorithmError (one line; ``.detail`` for the full message) when the file cannot
-    be read, does not compile in nopython mode, or fails a safety check. Each version of a file
-    (by content) is compiled and checked once per process."""
+    ``precision`` ("float64" or "float32", see :mod:`livedyn.dsp.precision`) is the arithmetic
+    the file's stages are compiled in; each precision is checked on its own. Raises
+    UserAlgorithmError (one line; ``.detail`` for the full message) when the file cannot be
+    read, does not compile in nopython mode, or fails a safety check. Each version of a file
+    (by content) is compiled and checked once per process and precision."""
+    from .dsp.precision import check as check_precision
+
+    precision = check_precision(precision)
     path, source, digest = read_source(path)
+    key = (path, digest, check, precision)
     with _CACHE_LOCK:
-        got = _CACHE.get((path, digest, check))
+        got = _CACHE.get(key)
     if got is not None:
         return got
     if check and hasattr(os, "fork"):
@@ -44,19 +50,27 @@ def load(path, check=True) -> Algorithm:
         from .vet import vet_checks, vet_import
 
         vet_import(path, source, digest)
-        alg = compile_file(path, source, digest)
+        alg = compile_file(path, source, digest, precision)
         alg = dataclasses.replace(alg, report=vet_checks(alg).report)
     else:
-        alg = compile_file(path, source, digest)
+        alg = compile_file(path, source, digest, precision)
         if check:
             alg = check_algorithm(alg)
     with _CACHE_LOCK:
-        _CACHE[(path, digest, check)] = alg
+        _CACHE[key] = alg
     return alg
 
 
-def get(spec) -> Algorithm:
-    """An Algorithm from a built-in name, an algorithm file ``FILE.py``, or an Algorithm."""
-    if not isinstance(spec, Algorithm) and is_user_file(spec):
-        return load(spec)
+def get(spec, precision=None) -> Algorithm:
+    """An Algorithm from a built-in name, an algorithm file ``FILE.py``, or an Algorithm.
+
+    ``precision`` matters for files only (a built-in runs in either): a file, or the
+    Algorithm of one, is returned compiled in that precision (default float64, or the
+    Algorithm's own)."""
+    if isinstance(spec, Algorithm):
+        if spec.source is not None and precision is not None and spec.precision != precision:
+            return load(spec.source, precision=precision)
+        return spec
+    if is_user_file(spec):
+        return load(spec, precision=precision or "float64")
     return algorithms.get(spec)

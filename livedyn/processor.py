@@ -37,14 +37,28 @@ class Processor:
         Channels of the external key input (0: no external key).
     warm : bool
         Run the kernel once now on scratch copies (compiling or loading it), not at first use.
+    precision : str, optional
+        ``"float64"`` or ``"float32"``: the arithmetic of the kernel (see
+        :mod:`livedyn.dsp.precision`). A structural setting, fixed for the processor's life.
+        Default: a user file's compiled precision, else float64. A user file compiled in one
+        precision cannot run in the other (load it again with ``precision=``).
     **params
         Initial parameter values by name, as numbers or text (``ratio="4:1"``).
     """
 
     def __init__(self, algorithm, samplerate, channels, key_channels=0, *, warm=True,
-                 **params):
+                 precision=None, **params):
+        from .dsp.precision import check as check_precision
+
         self.algorithm = algorithms.get(algorithm)
         self.schema = self.algorithm.schema
+        own = self.algorithm.precision
+        self.precision = check_precision(precision if precision is not None else own)
+        if self.algorithm.source is not None and self.precision != own:
+            raise ParamError(
+                f"precision = {self.precision}: {self.algorithm.source} was compiled in {own}; "
+                f"load it in {self.precision} (livedyn.loader.load(path, precision="
+                f"{self.precision!r}))")
         samplerate = float(samplerate)
         if not (8000 <= samplerate <= 384000):
             raise ParamError(f"samplerate = {samplerate:g} Hz: expected 8000 to 384000 Hz")
@@ -55,7 +69,7 @@ class Processor:
         self.samplerate = samplerate
         self.channels = int(channels)
         self.key_channels = int(key_channels)
-        self._kernel = self.algorithm.kernel()
+        self._kernel = self.algorithm.kernel(self.precision)
 
         self.p = np.zeros(NPARAM, dtype=np.float64)
         for prm in ALL.values():  # every slot sane, also those this algorithm lacks
@@ -96,7 +110,9 @@ class Processor:
 
         x = np.zeros((1, self.channels), np.float32)
         k = np.zeros((1, max(self.key_channels, 1)), np.float32) if self.key_channels else x
-        warm(self._kernel, f"{self.algorithm.kind} kernel", x, k, np.empty_like(x), self.p.copy(),
+        label = f"{self.algorithm.kind} kernel" + (
+            f" in {self.precision}" if self.precision != "float64" else "")
+        warm(self._kernel, label, x, k, np.empty_like(x), self.p.copy(),
              self.st.copy(), self.ring.copy(), self._no_trace)
 
     # -- parameters ---------------------------------------------------------------------------

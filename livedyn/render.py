@@ -42,6 +42,18 @@ class Setup:
     algorithm: str | None = None
     preset: str | None = None
     settings: list = field(default_factory=list)  # [(name, value text)]
+    precision: str | None = None  # "float64" or "float32" (also --set precision=...)
+
+    def chosen_precision(self):
+        """The precision asked for: the last ``precision=`` setting, else ``precision``, else
+        float64 (ParamError, one line, for anything else)."""
+        from .dsp.precision import check
+
+        p = self.precision
+        for name, value in self.settings:
+            if name.strip().lower() == "precision":
+                p = value
+        return check(p or "float64")
 
 
 def parse_setting(text):
@@ -94,8 +106,9 @@ def build_processor(setup: Setup, samplerate, channels, key_channels=0,
     raise RenderError.
     """
     preset = presets_mod.load(setup.preset) if setup.preset else None
-    proc = Processor(loader.get(algorithm_of(setup, preset)), samplerate, channels,
-                     key_channels=key_channels)
+    precision = setup.chosen_precision()  # structural: it chooses the kernel, not a value
+    proc = Processor(loader.get(algorithm_of(setup, preset), precision), samplerate, channels,
+                     key_channels=key_channels, precision=precision)
     if key_channels and "key" not in proc.schema:
         raise RenderError(f"--key: the {proc.algorithm.name} has no key input; leave out "
                           "--key or choose an algorithm with one")
@@ -110,6 +123,8 @@ def build_processor(setup: Setup, samplerate, channels, key_channels=0,
                     continue  # no key input here: stay on the main input
             proc.set(name, v)
     for name, value in setup.settings:
+        if name.strip().lower() == "precision":
+            continue  # chosen above
         name = proc.schema.resolve(name)  # a unique prefix, as at the console
         proc.set(name, value)
         if name == "key":

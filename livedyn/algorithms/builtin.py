@@ -32,13 +32,16 @@ class Algorithm:
     report: tuple = ()  # the load-time check report, one line each
     digest: str = ""  # hash of the file's text
     module: object = None  # the file's module (its stages and numba helpers)
+    precision: str = "float64"  # a user file's compiled precision (built-ins have both)
 
-    def kernel(self):
+    def kernel(self, precision="float64"):
+        """The kernel of the kind that runs this algorithm, in ``precision`` (a user file's
+        own compiled code for a whole kernel)."""
         if self.kind == "user":
             return self.user_block
-        from ..dsp import kernel_for
+        from ..dsp.precision import kernel_for
 
-        return kernel_for(self.kind)
+        return kernel_for(self.kind, precision)
 
 
 def _limiter_schema():

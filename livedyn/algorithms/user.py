@@ -118,33 +118,48 @@ def read_source(path):
     return path, source, hashlib.sha256(source.encode()).hexdigest()[:12]
 
 
-def compile_file(path, source, digest):
-    """Compile one version of an algorithm file (from :func:`read_source`) into an Algorithm.
+def compile_file(path, source, digest, precision="float64"):
+    """Compile one version of an algorithm file (from :func:`read_source`) into an Algorithm,
+    in ``precision`` ("float64", or "float32": the file's arithmetic in single precision, see
+    :mod:`livedyn.dsp.precision`).
 
     Only compiles: the load-time checks, the cache of versions and the lookup by path belong to
     :mod:`livedyn.loader`, which sits above the Processor that the checks run. Raises
     UserAlgorithmError (one line; ``.detail`` for the full message)."""
-    return _build(Path(path), source, digest)
+    return _build(Path(path), source, digest, precision)
 
 
-def _build(path, source, digest):
-    module = _import(path, source, digest)
-    return _from_module(path, module, digest)
+def _build(path, source, digest, precision="float64"):
+    module = _import(path, source, digest, precision)
+    return _from_module(path, module, digest, precision)
 
 
-def _import(path, source, digest):
-    """Run the file's top level as a module (after the static refusals)."""
+def _import(path, source, digest, precision="float64"):
+    """Run the file's top level as a module (after the static refusals); in float32, the
+    file's text rewritten by :func:`livedyn.dsp.precision.rewrite_user` (same lines)."""
     try:
-        compile(source, str(path), "exec")
+        code = compile(source, str(path), "exec")
     except SyntaxError as e:
         raise UserAlgorithmError(f"{path}:{e.lineno}: syntax error: {e.msg}") from None
     _no_raise(path, source)
-    modname = f"livedyn_user_{re.sub(r'[^0-9A-Za-z_]', '_', path.stem)}_{digest}"
+    suffix = "" if precision == "float64" else "_f32"
+    modname = f"livedyn_user_{re.sub(r'[^0-9A-Za-z_]', '_', path.stem)}_{digest}{suffix}"
     spec = importlib.util.spec_from_file_location(modname, path)
     module = importlib.util.module_from_spec(spec)
     module.Param = user_param  # so that the file needs no import for its own parameters
+    if precision != "float64":
+        from ..dsp.precision import rewrite_user
+
+        code = rewrite_user(source, path)
     try:
-        spec.loader.exec_module(module)
+        if precision == "float64":
+            spec.loader.exec_module(module)
+        else:
+            sys.modules[modname] = module
+            exec(code, module.__dict__)
+            from ..dsp.precision import single
+
+            single(module)
     except Exception as e:  # the user's code raised while being imported
         if type(e).__module__.startswith("numba"):  # e.g. a helper compiled at import
             raise compile_error(path, "a numba function", e) from None
@@ -155,7 +170,7 @@ def _import(path, source, digest):
     return module
 
 
-def _from_module(path, module, digest):
+def _from_module(path, module, digest, precision="float64"):
     from .builtin import Algorithm
 
     fns = {}
@@ -190,13 +205,15 @@ def _from_module(path, module, digest):
     desc = (module.__doc__ or "").strip().splitlines()[0] if module.__doc__ else ""
     needs_key = "key" in schema and int(schema["key"].default) == KEY_EXTERNAL
     common = dict(source=path, state_size=nstate, boost=boost, block=block, latency=latency,
-                  stages=tuple(fns), digest=digest, needs_key=needs_key, module=module)
+                  stages=tuple(fns), digest=digest, needs_key=needs_key, module=module,
+                  precision=precision)
     if "kernel" in fns:
         blk, job = _compile_kernel(path, fns["kernel"], nstate)
         _check_native(path, "kernel", fns["kernel"], job)
         return Algorithm(name, desc or f"user kernel {path.name}", schema, "user", 0,
                          user_block=blk, user_job=job, **common)
-    compiled = {stage: _compile_stage(path, stage, fn, nstate) for stage, fn in fns.items()}
+    compiled = {stage: _compile_stage(path, stage, fn, nstate, precision)
+                for stage, fn in fns.items()}
     for stage, fn in fns.items():
         _check_native(path, stage, fn, compiled[stage])
     law = LAW_USER if "gain_curve" in fns else LAW_COMPRESSOR
@@ -380,21 +397,25 @@ def jit_of(fn, **flags):
     return nb.njit(error_model="numpy", nogil=True, **flags)(py)
 
 
-def _compile_stage(path, stage, fn, nstate):
+def _compile_stage(path, stage, fn, nstate, precision="float64"):
+    """A stage as a C-callable ``double fn(double x, double *p[, double *s])``; in float32 the
+    stage receives ``x`` as a float32 (its own arithmetic is single precision, see
+    :func:`livedyn.dsp.precision.rewrite_user`) and the kernel rounds its result to float32."""
     import numba as nb
     from numba import carray, types
 
     jit = jit_of(fn)
     f64p = types.CPointer(types.float64)
+    real = np.float32 if precision == "float32" else np.float64
     try:
         if stage == "gain_curve":
             def wrapper(x, pp):
-                return jit(x, carray(pp, (NPARAM,)))
+                return jit(real(x), carray(pp, (NPARAM,)))
 
             sig = types.float64(types.float64, f64p)
         else:
             def wrapper(x, pp, sp):
-                return jit(x, carray(pp, (NPARAM,)), carray(sp, (nstate,)))
+                return jit(real(x), carray(pp, (NPARAM,)), carray(sp, (nstate,)))
 
             sig = types.float64(types.float64, f64p, f64p)
         return nb.cfunc(sig, nopython=True, error_model="numpy")(wrapper)

@@ -85,6 +85,8 @@ class CommandLine:
             self.set_output_level(arg)
         elif v == "algorithm":
             self.change_algorithm(arg)
+        elif v == "precision":
+            self.change_precision(arg)
         elif v == "source":
             self.set_source(arg)
         elif v == "learn":

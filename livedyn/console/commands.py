@@ -41,6 +41,8 @@ VERBS = {
     "redo": ("", "put back what the last undo took away"),
     "algorithm": ("NAME|FILE", "change the running algorithm (built-in name or algorithm file), "
                                "crossfaded in; shared parameters keep their values"),
+    "precision": ("float64|float32", "compile the running algorithm in that precision (off "
+                                     "the audio thread) and crossfade to it"),
     "source": ("main|key KIND ...", "switch a test source: tone [HZ [DBFS]], pink [DBFS], "
                                     "white [DBFS], sweep [F1 [F2 [SECONDS [DBFS]]]], bursts "
                                     "[HZ [HIGH [LOW [ON_MS [OFF_MS]]]]], input (the run's own); "
@@ -64,6 +66,7 @@ VERB_WORDS = {
     "learn": None, "forget": None, "output": None, "midi": None,
     "bypass": ("on", "off"), "mute": ("on", "off"), "match": ("on", "off"),
     "monitor": ("out", "key", "delta"), "slot": ("a", "b"),
+    "precision": ("float64", "float32"),
     "compare": (), "undo": (), "redo": (), "reset": (), "log": (), "help": (), "quit": (),
 }
 #: Verbs whose argument may be left out.

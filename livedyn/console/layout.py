@@ -117,7 +117,9 @@ def gr_bar(gr, width, full=GR_FULL_DB):
 # panels
 
 def draw_header(m, width, height):
-    frags = [("class:title", f" {m.title} | {m.algorithm.name} ")]
+    prec = getattr(getattr(m.engine, "proc", None), "precision", "float64")
+    frags = [("class:title", f" {m.title} | {m.algorithm.name}"
+              + (f" ({prec})" if prec != "float64" else "") + " ")]
     frags.append(("class:title.slot", f" slot {m.active.upper()} "))
     if m.bypassed:
         frags.append(("class:title.bypass", " BYPASS "))

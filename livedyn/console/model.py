@@ -711,6 +711,22 @@ class ConsoleModel(CommandLine, Metering):
                   f"{len(carried)} shared value{'s' if len(carried) != 1 else ''} kept, "
                   "the others at their defaults")
 
+    def change_precision(self, precision):
+        """Crossfade to the running algorithm compiled in ``precision`` (float64 or float32):
+        the engine's primed swap, the variant compiled before the callback sees it."""
+        swap = getattr(self.engine, "swap", None)
+        proc = getattr(self.engine, "proc", None)
+        if not callable(swap) or proc is None:
+            raise ConsoleError("precision: this engine cannot change precision")
+        old = proc.precision
+        if precision == old:
+            self.info(f"precision: already {old}")
+            return
+        self.info(f"precision: compiling {self.algorithm.name} in {precision} ...")
+        swap(proc.algorithm, precision=precision)
+        self._rebind()
+        self.info(f"precision {precision} crossfaded in (was {old}); values kept")
+
     def set_source(self, text):
         """``main|key KIND [ARGS]``: reprogram a test source (see
         :mod:`livedyn.control.sources`)."""

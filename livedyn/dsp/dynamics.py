@@ -93,7 +93,7 @@ def ring_back(w, d, n_ring):
 def tap_fade(v_new, v_old, xf, xf_len):
     """The delayed sample while a lookahead change crossfades from the old tap's ``v_old`` to
     the new tap's ``v_new`` (``xf`` of ``xf_len`` samples of the fade remain)."""
-    wgt = 1.0 - xf / xf_len
+    wgt = float(1.0 - xf / xf_len)  # (float: the variant keeps its precision)
     return wgt * v_new + (1.0 - wgt) * v_old
 
 
@@ -287,7 +287,7 @@ def dynamics_block(x, key, out, p, st, ring, tr):
                 if link == LINK_MEAN:
                     for j in range(1, nk):
                         lv += st[R_MEAS, j]
-                    lv /= nk
+                    lv /= float(nk)  # (float: the variant keeps its precision)
                 else:
                     for j in range(1, nk):
                         if st[R_MEAS, j] > lv:

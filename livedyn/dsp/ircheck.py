@@ -24,9 +24,12 @@ _GLOBAL_RE = re.compile(r"@(" + _ID + r")")
 TOP = None  # "any value"
 
 # External functions the callback may reach: LLVM intrinsics (llvm.*), the vDSO clock, and libm
-# functions (pure computations: no lock, no allocation).
-ALLOWED_EXTERNAL = {"clock_gettime", "sqrt", "exp", "log", "log10", "pow", "sin", "cos", "tan",
-                    "atan2", "floor", "ceil", "fmod", "log1p", "expm1", "hypot", "tanh"}
+# functions (pure computations: no lock, no allocation), in double and single precision (the
+# C99 names with an f suffix: the float32 variants call those).
+_LIBM = {"sqrt", "exp", "log", "log10", "pow", "sin", "cos", "tan", "atan2", "floor", "ceil",
+         "fmod", "log1p", "expm1", "hypot", "tanh", "exp2", "log2", "atan", "asin", "acos",
+         "sinh", "cosh", "cbrt"}
+ALLOWED_EXTERNAL = {"clock_gettime"} | _LIBM | {f + "f" for f in _LIBM}
 
 
 def _split_top(text):

@@ -263,7 +263,7 @@ def limiter_block(x, key, out, p, st, ring, tr):
             tp_pos += 1
             st[R_TP_POS, 0] = 0 if tp_pos >= TP_PHASE_TAPS else tp_pos
         refresh = (t % SUM_REFRESH) == 0.0
-        n_box = att + 1.0
+        n_box = float(att + 1)  # (float: the variant keeps its precision)
         for g in range(ngain):
             col = ch + 4 * g
             r = _req(ring, ch, w, g, ngain)

@@ -38,9 +38,16 @@ GUARD_XFADE_MS = 5.0  # no source: long enough to rule out one preempted block, 
 #                       that the stream recovers within a few tens of milliseconds)
 
 
-def _job_function(alg):
+def _job_function(proc):
+    """The job function the callback calls for a processor: a user file's whole kernel, or the
+    built-in kernel of its kind in its precision."""
+    alg = proc.algorithm
     if alg.kind == "user":
         return alg.user_job
+    if proc.precision != "float64":
+        from ..dsp.precision import job_for
+
+        return job_for(alg.kind, proc.precision)
     return cb.job_limiter if alg.kind == "limiter" else cb.job_dynamics
 
 
@@ -336,7 +343,7 @@ class Engine:
     def _fill_user_data(self, processor, monitor):
         """The user-data block: the address and size of every array, the kernel slot 0 job."""
         maxf = self.maxf
-        kernel = _job_function(processor.algorithm)
+        kernel = _job_function(processor)
         self._kernel_cfunc = kernel
         ud = self.ud
         ud[cb.U_STATS] = self.stats.ctypes.data
@@ -381,7 +388,8 @@ class Engine:
         self.extra_table = np.zeros((max(int(instances) - 1, 1), 2), np.int64)
         self.y_extra = np.zeros((maxf, self.ch), np.float32)
         for i in range(int(instances) - 1):
-            twin = Processor(processor.algorithm, self.fs, self.ch, self.kch)
+            twin = Processor(processor.algorithm, self.fs, self.ch, self.kch,
+                             precision=processor.precision)
             twin.p[:] = processor.p
             ej = np.zeros(cb.JOB_SIZE, np.int64)
             ej[:] = job
@@ -730,7 +738,7 @@ class Engine:
 
     # ---- live swap ----------------------------------------------------------------------------
     def swap(self, algorithm, xfade_ms=SWAP_XFADE_MS, prime_seconds=PRIME_SECONDS,
-             stall_seconds=0.5):
+             stall_seconds=0.5, precision=None):
         """Replace the running algorithm with ``algorithm`` (an Algorithm, e.g. a new version
         of a user file) without a dropout.
 
@@ -741,10 +749,16 @@ class Engine:
         ``xfade_ms``, after which the new one is current and the callback echoes the switch. The
         old version's code and state stay alive until that echo. Returns a dict of what
         happened; raises EngineError when the stream stops (no block for ``stall_seconds``)
-        before the callback confirms the switch."""
-        from .. import loader
+        before the callback confirms the switch.
 
-        alg = loader.get(algorithm)
+        ``precision`` ("float64" or "float32", default the running one's) is the arithmetic of
+        the new version: a change of precision is a swap like any other, its variant compiled
+        here, off the audio thread, before the callback sees it."""
+        from .. import loader
+        from ..dsp.precision import check as check_precision
+
+        precision = check_precision(precision if precision is not None else self.proc.precision)
+        alg = loader.get(algorithm, precision)
         with self._lock:
             if self.stream is None or self.error is not None:
                 raise EngineError("swap: the stream is not running")
@@ -757,7 +771,8 @@ class Engine:
                                   "cancelled; try again when it plays")
             t0 = time.monotonic()
             old = self.proc
-            new = Processor(alg, self.fs, self.ch, self.kch)
+            new = Processor(alg, self.fs, self.ch, self.kch, precision=precision)
+            _job_function(new)  # compiled (or loaded) now, not while the callback waits
             carried = []
             for prm in new.schema:
                 if prm.name in old.schema:
@@ -779,7 +794,7 @@ class Engine:
             job = self.jobs[nxt]
             self._fill_job(job, new, self.y2)
             self._slot_owner[nxt] = new
-            self.table[nxt, 0] = _job_function(alg).address  # (its job address is fixed)
+            self.table[nxt, 0] = _job_function(new).address  # (its job address is fixed)
             lat = new.latency_samples
             self.ud[cb.U_SWAP_SLOT] = nxt
             self.ud[cb.U_SWAP_WARM] = lat + self.blocksize if lat > 0 else 0
@@ -826,7 +841,7 @@ class Engine:
             for prm in new.schema:  # the values in force from the switch on
                 self._recorded.append((frame, prm.name, float(new.p[prm.slot])))
             self.proc = new  # last: readers of proc find pend already the new version's
-            info = {"algorithm": alg.name, "frame": frame,
+            info = {"algorithm": alg.name, "frame": frame, "precision": new.precision,
                     "prime_s": t_prime, "switch_s": time.monotonic() - t0 - t_prime,
                     "carried": carried, "latency": lat,
                     "swap_blocks": int(self.stats[cb.S_SWAP_BLOCKS]) - blocks0}

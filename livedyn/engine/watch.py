@@ -78,7 +78,8 @@ class FileWatcher:
 
         t0 = time.monotonic()
         try:
-            alg = load(self.path)
+            alg = load(self.path, precision=getattr(getattr(self.engine, "proc", None),
+                                                    "precision", "float64"))
             info = self.engine.swap(alg)
         except (UserAlgorithmError, ParamError, EngineError) as e:
             self.failures += 1
