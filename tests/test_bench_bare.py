@@ -5,9 +5,9 @@ and ``--algorithm`` reports every precision. No wall-clock assertions: timings a
 to exist and to be consistent with each other (ratios of the same medians, the instance count
 formula).
 
-The float32 cases run when the Processor offers ``precision="float32"``; until then they are
-skipped with that reason (``bare.precisions()``). Every test that needs the bare loops is
-skipped, with the build helper's one-line note, on a machine without a C compiler.
+Every case runs in both precisions (the float32 kernels of livedyn.dsp.precision). Every test
+that needs the bare loops is skipped, with the build helper's one-line note, on a machine
+without a C compiler.
 """
 from __future__ import annotations
 
@@ -38,12 +38,6 @@ def lib():
         pytest.skip(str(exc))
 
 
-def need(precision):
-    if precision not in bare.precisions():
-        pytest.skip(f"{precision} kernels not in this build: the Processor has no precision "
-                    "argument yet")
-
-
 PRECISIONS = pytest.mark.parametrize("precision", bare.PRECISIONS)
 
 
@@ -53,7 +47,6 @@ PRECISIONS = pytest.mark.parametrize("precision", bare.PRECISIONS)
 @pytest.mark.parametrize("name", list(CASES))
 @pytest.mark.parametrize("blocksize", [64, 37])
 def test_bare_loop_agrees_with_the_kernel(lib, name, precision, blocksize):
-    need(precision)
     got = bare.check_bare(lib, CASES[name], precision, FS, blocksize, seconds=0.5)
     assert got["check"] == "ok", got["mismatch"]
     assert got["max_abs_diff"] <= bare.TOLERANCE[precision]
@@ -65,7 +58,6 @@ def test_bare_loop_agrees_with_the_kernel(lib, name, precision, blocksize):
 
 @PRECISIONS
 def test_ducker_loop_agrees_with_a_mono_key(lib, precision):
-    need(precision)
     case = bare.BareCase("ducker mono key", "ducker", "ducker", {}, 1)
     got = bare.check_bare(lib, case, precision, FS, 64, seconds=0.5)
     assert got["check"] == "ok", got["mismatch"]
@@ -77,7 +69,6 @@ def test_ducker_loop_agrees_with_a_mono_key(lib, precision):
                                       dict(threshold=-12.0, ratio=2.0, knee=2.0, attack=30.0,
                                            release=400.0, makeup=6.0, lookahead=0.0)])
 def test_compressor_loop_agrees_on_other_settings(lib, precision, settings):
-    need(precision)
     case = bare.BareCase("compressor", "compressor", "comp", settings)
     got = bare.check_bare(lib, case, precision, FS, 64, seconds=0.5)
     assert got["check"] == "ok", got["mismatch"]
@@ -106,7 +97,6 @@ def test_float_loops_follow_the_double_loops(lib):
                                              ("limiter", P_RELEASE, 5.0),
                                              ("ducker (stereo key)", P_ATTACK, 2.0)])
 def test_a_parameter_changed_on_one_side_is_a_mismatch(lib, precision, name, slot, delta):
-    need(precision)
     proc = bare.make_processor(CASES[name].algorithm, FS, 2, CASES[name].key_channels,
                                precision, **CASES[name].settings)
     p = proc.p.copy()
@@ -137,10 +127,10 @@ def test_mismatch_gets_no_timings_and_the_command_exits_1(lib, monkeypatch, caps
     assert main(["kernels", "--quick", "--blocksize", "64"]) == 1
     text = capsys.readouterr().out
     rows = [ln for ln in text.splitlines() if ln.startswith(tuple(CASES))]
-    assert len(rows) == len(CASES) * len(bare.precisions())
+    assert len(rows) == len(CASES) * len(bare.PRECISIONS)
     # the compressor and the ducker read the threshold; the limiter has none (still agrees)
     assert sum("MISMATCH" in ln and "no timings" in ln for ln in rows) == 2 * len(
-        bare.precisions())
+        bare.PRECISIONS)
     assert "MISMATCH (no timings): compressor 64" in text
 
 
@@ -189,7 +179,7 @@ def test_bare_table_has_its_columns_and_rows(lib):
     for col in ("block", "prec", "check", "numba", "bare C", "numba/C", "paired", "inst numba"):
         assert col in head
     assert [(r["case"], r["precision"]) for r in rows] == [
-        (c.name, p) for c in bare.BARE_CASES for p in bare.precisions()]
+        (c.name, p) for c in bare.BARE_CASES for p in bare.PRECISIONS]
     for r in rows:
         assert set(r) == set(bare.BARE_ROW_KEYS)
         assert r["check"] == "ok" and r["repeats"] == 2
@@ -199,15 +189,13 @@ def test_bare_table_has_its_columns_and_rows(lib):
                                                      / r["bare_ns_per_frame"])
         assert r["instances_per_core"] == math.floor(0.7e9 / (FS * r["numba_ns_per_frame"]))
         assert r["bare_instances_per_core"] == math.floor(0.7e9 / (FS * r["bare_ns_per_frame"]))
-    if len(bare.precisions()) < 2:
-        assert any("float64 only" in ln for ln in lines)
 
 
 def test_curve_section_checks_both_curves_and_reports_the_targets(lib):
     lines = []
     rows = bare.run_curves(blocksizes=(64,), seconds=0.1, repeats=2, out=lines.append,
                            progress=None, lib=lib)
-    assert [r["precision"] for r in rows] == list(bare.precisions())
+    assert [r["precision"] for r in rows] == list(bare.PRECISIONS)
     for r in rows:
         assert r["check"] == "ok", r["mismatch"]
         assert r["same_params_equal"]
@@ -245,8 +233,8 @@ def test_json_report_carries_the_bare_and_curve_rows(lib, monkeypatch, tmp_path)
     out = tmp_path / "k.json"
     assert main(["kernels", "--quick", "--blocksize", "64", "--json", str(out)]) == 0
     doc = json.loads(out.read_text())
-    assert len(doc["bare"]) == len(bare.BARE_CASES) * len(bare.precisions())
-    assert [r["precision"] for r in doc["curves"]] == list(bare.precisions())
+    assert len(doc["bare"]) == len(bare.BARE_CASES) * len(bare.PRECISIONS)
+    assert [r["precision"] for r in doc["curves"]] == list(bare.PRECISIONS)
 
 
 # ---- --algorithm ------------------------------------------------------------------------------
@@ -256,7 +244,7 @@ def test_algorithm_reports_the_stage_cost_in_every_precision(tmp_path):
 
     path = bare.write_curves(tmp_path)["costly"]
     res = run_user(path, blocksizes=(64,), quick=True)
-    precs = list(bare.precisions())
+    precs = ["float64", "float32"]
     assert res["precisions"] == precs
     assert [(r["precision"], r["algorithm"].split(" ")[0]) for r in res["rows"]] == [
         (p, n) for p in precs for n in ("bench-costly-curve", "compressor")]
@@ -268,13 +256,13 @@ def test_algorithm_reports_the_stage_cost_in_every_precision(tmp_path):
         assert re.search(rf"^{p}\s+64\s", text, re.M)
 
 
-def test_algorithm_output_has_float32_rows(tmp_path):
-    need("float32")
-    from livedyn.bench.user import run_user
+def test_a_user_file_is_loaded_in_the_precision_asked(tmp_path):
+    from livedyn.loader import load
 
-    res = run_user(bare.write_curves(tmp_path)["same"], blocksizes=(64,), quick=True)
-    assert [r["precision"] for r in res["rows"]].count("float32") == 2  # file and baseline
-    assert [s["precision"] for s in res["stage"]] == ["float64", "float32"]
+    path = bare.write_curves(tmp_path)["same"]
+    for prec in bare.PRECISIONS:
+        proc = bare.make_processor(load(path), FS, 2, 0, prec)  # a float64 Algorithm given
+        assert proc.precision == prec and proc.algorithm.precision == prec
 
 
 def test_algorithm_baseline_keeps_the_files_settings(tmp_path):
@@ -296,6 +284,6 @@ def test_command_line_algorithm_prints_each_precision(tmp_path):
                        cwd=ROOT)
     assert r.returncode == 0, r.stderr
     assert "stages over the compressor" in r.stdout
-    for p in bare.precisions():
+    for p in bare.PRECISIONS:
         for bs in (64, 1024):
             assert re.search(rf"^{p}\s+{bs}\s", r.stdout, re.M), r.stdout

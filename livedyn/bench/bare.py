@@ -28,13 +28,12 @@ The user-stage section (:func:`run_curves`) times two gain-curve files synthesis
 bare-C compressor loop (``comp_x``; target: within 25 % of C's extra). The 5 % and 25 % are
 this project's targets (no outside source).
 
-float32 rows appear when the Processor offers ``precision="float32"``
-(:func:`precisions`); before that the table says so and has float64 rows only.
+The float32 kernels are :mod:`livedyn.dsp.precision`'s single-precision variants
+(``Processor(..., precision="float32")``; a user file loaded with ``precision="float32"``).
 """
 from __future__ import annotations
 
 import ctypes
-import inspect
 import statistics
 import tempfile
 import time
@@ -49,11 +48,11 @@ from .kernels import (SEED, _compare, _spread, _stderr, _whole_blocks, checked_r
 from .sweep import CORE_SHARE, instances_per_core
 
 __all__ = ["BARE_CASES", "BareCase", "Bare", "CURVE_TEMPLATE", "COMP_SETTINGS", "PRECISIONS",
-           "TOLERANCE", "check_bare", "format_bare", "format_curves", "load", "precisions",
+           "TOLERANCE", "check_bare", "format_bare", "format_curves", "load",
            "make_processor", "run_bare", "run_curves", "write_curves"]
 
 BUILD_DIR = cache_folder("bare")
-PRECISIONS = ("float64", "float32")
+PRECISIONS = ("float64", "float32")  # the order of the rows (livedyn.dsp.precision's)
 SUFFIX = {"float64": "f64", "float32": "f32"}
 #: Largest accepted |numba - bare C| per output sample, by precision (absolute, full scale 1.0):
 #: rounding of double maths for float64; for float32, float rounding of the same maths done in
@@ -87,31 +86,17 @@ BARE_CASES = (
 )
 
 
-class BareUnavailable(RuntimeError):
-    """Raised for a precision the Processor does not offer (one line)."""
-
-
-def precisions():
-    """The precisions this build's :class:`~livedyn.processor.Processor` offers."""
-    from livedyn.processor import Processor
-
-    if "precision" in inspect.signature(Processor.__init__).parameters:
-        return PRECISIONS
-    return PRECISIONS[:1]
-
-
 def make_processor(algorithm, samplerate, channels, key_channels=0, precision="float64",
                    **settings):
-    """A Processor in ``precision`` ("float64" or "float32")."""
+    """A Processor in ``precision`` ("float64" or "float32"); a user file (or its Algorithm)
+    is loaded in that precision first."""
+    from livedyn.loader import get
     from livedyn.processor import Processor
 
     if precision not in PRECISIONS:
         raise ValueError(f"precision = {precision!r}: expected one of {', '.join(PRECISIONS)}")
-    if precision not in precisions():
-        raise BareUnavailable(f"precision {precision}: this build's Processor has no precision "
-                              "argument (float64 kernels only)")
-    kw = {} if precision == "float64" else {"precision": precision}
-    return Processor(algorithm, samplerate, channels, key_channels, **kw, **settings)
+    return Processor(get(algorithm, precision), samplerate, channels, key_channels,
+                     precision=precision, **settings)
 
 
 # ---- the library ----------------------------------------------------------------------------
@@ -349,13 +334,10 @@ def run_bare(quick=False, blocksizes=(64, 1024), samplerate=48000, seconds=None,
         except CTwinUnavailable as exc:
             notes.append(str(exc))
             progress(str(exc))
-    precs = precisions()
-    if len(precs) < len(PRECISIONS):
-        notes.append("float32: this build's Processor has no precision argument; float64 only")
     rows, pairs = [], []
     for case in cases:
         for bs in blocksizes:
-            for prec in precs:
+            for prec in PRECISIONS:
                 row = dict.fromkeys(BARE_ROW_KEYS)
                 row.update(case=case.name, algorithm=case.algorithm, config=case.config,
                            settings=dict(case.settings), precision=prec, blocksize=bs,
@@ -560,14 +542,15 @@ def run_curves(quick=False, blocksizes=(64, 1024), samplerate=48000, seconds=Non
             note = str(exc)
     rows, sets = [], []
     with tempfile.TemporaryDirectory(prefix="livedyn-curves-") as tmp:
-        files = write_curves(tmp)
-        algs = {k: load_file(v) for k, v in files.items()}
+        files = write_curves(tmp)  # loaded (compiled and checked) in each precision here
+        algs = {prec: {k: load_file(v, precision=prec) for k, v in files.items()}
+                for prec in PRECISIONS}
     for bs in blocksizes:
         frames = _whole_blocks(seconds, samplerate, bs)
         x = noise_bursts(SEED, frames, 2, samplerate)
-        for prec in precisions():
+        for prec in PRECISIONS:
             procs = {k: make_processor(a, samplerate, 2, 0, prec, **COMP_SETTINGS)
-                     for k, a in algs.items()}
+                     for k, a in algs[prec].items()}
             base = make_processor("compressor", samplerate, 2, 0, prec, **COMP_SETTINGS)
             runs = dict(builtin=Run(lib, x, x, bs, base),
                         same=Run(lib, x, x, bs, procs["same"]),
