@@ -848,6 +848,7 @@ def cmd_bench(args):
 
     what = args.what
     result = {}
+    status = 0  # 1 when a bare-C loop disagreed with its kernel (MISMATCH)
     from .loader import is_user_file
 
     user_file = is_user_file(args.algorithm)
@@ -861,8 +862,12 @@ def cmd_bench(args):
         from .bench.kernels import machine_info, report
         from .bench.sweep import run_sweep
 
+        from .bench.bare import run_precision
+
         rows = run_sweep(quick=args.quick, wide=args.wide)
-        result["kernels"] = report(rows, machine_info())
+        precision = run_precision(quick=args.quick, wide=args.wide)
+        result["kernels"] = report(rows, machine_info(), precision=precision)
+        status = status if precision["ok"] else 1
     if what in ("stream", "all"):
         seconds = args.seconds or (5.0 if args.quick else 60.0)
         kw = dict(seconds=seconds, algorithm=args.algorithm, samplerate=int(args.samplerate),
@@ -915,7 +920,7 @@ def cmd_bench(args):
     if args.json:
         live.write_json(args.json, result)
         print(f"results written to {args.json}")
-    return 0
+    return status
 
 
 # ---- parser ---------------------------------------------------------------------------------
@@ -1148,13 +1153,15 @@ def build_parser():
                                     "live swap and round-trip latency (headless JACK server "
                                     "unless --device is given).")
     bn.add_argument("what", choices=["kernels", "stream", "swap", "latency", "all"],
-                    help="kernels: cost per frame against plain-Python and plain-C twins; "
+                    help="kernels: cost per frame against plain-Python and plain-C twins and "
+                         "bare-C loops, float64 and float32; "
                          "stream: the live callback's share of the block period; swap: what a "
                          "live swap costs; latency: round trip through a loopback; all: each")
     bn.add_argument("--quick", action="store_true", help="short runs for a smoke test")
     bn.add_argument("--algorithm", default="compressor", metavar="NAME",
                     help="built-in name or FILE.py: kernels then times the file beside the "
-                         "built-in compressor (default compressor)")
+                         "built-in compressor with the stages the file leaves out, in each "
+                         "precision (default compressor)")
     bn.add_argument("--instances", type=int, default=1, metavar="K",
                     help="stream: instances of the algorithm in one callback (default 1)")
     bn.add_argument("--find-max", action="store_true",

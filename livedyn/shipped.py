@@ -1,7 +1,8 @@
 """Where livedyn's package data lives, and where it may write a cache.
 
 The shipped presets (``livedyn/presets/``), the example algorithm files
-(``livedyn/examples/``) and the C twin's source (``livedyn/bench/ctwin/``) are package data:
+(``livedyn/examples/``), the C twin's source (``livedyn/bench/ctwin/``) and the bare-C loops
+(``livedyn/bench/bare/``) are package data:
 they are found through :mod:`importlib.resources`, so that a plain wheel install works from
 any folder, exactly as the source tree does. Nothing is written into the package: builds go to
 the user's cache folder (:func:`cache_folder`).
@@ -15,7 +16,7 @@ from importlib import resources
 from pathlib import Path
 
 __all__ = ["package_folder", "presets_folder", "examples_folder", "ctwin_source",
-           "cache_folder"]
+           "bare_source", "cache_folder"]
 
 
 def package_folder(*parts) -> Path:
@@ -47,6 +48,11 @@ def examples_folder() -> Path:
 def ctwin_source() -> Path:
     """The C source of the bench's plain-C twin of the fused kernels."""
     return package_folder("bench", "ctwin", "kernels.c")
+
+
+def bare_source() -> Path:
+    """The C source of the bench's bare-C reference loops (it includes ``loops.h`` beside it)."""
+    return package_folder("bench", "bare", "bare.c")
 
 
 def cache_folder(*parts) -> Path:

@@ -158,6 +158,12 @@ def test_bench_kernels_quick(installed):
     assert not list(site.rglob("*.so"))
     if "C twin skipped" not in r.stdout + r.stderr:
         assert list((installed.cache / "livedyn" / "ctwin").glob("ctwin-*.so"))
+    # the bare-C table: its sources are package data, its library goes to the user's cache
+    if "bare-C loops skipped" not in r.stdout + r.stderr:
+        for prec in ("float64", "float32"):
+            assert re.search(rf"^compressor\s+64 {prec}\s+(bit-identical|ok )", r.stdout,
+                             re.M), r.stdout
+        assert list((installed.cache / "livedyn" / "bare").glob("bare-*.so"))
 
 
 def test_new_algorithm_then_check(installed):

@@ -1,7 +1,8 @@
 """``python -m livedyn.bench kernels|ctwin [--quick] ...``: the kernel cost tables.
 
 ``kernels``: each built-in kernel against its plain-Python twin (and the plain-C twin where a
-compiler exists); ``ctwin``: the numba kernels against the plain-C twins alone, both timed from
+compiler exists), then the numba kernels against bare-C loops in float64 and float32 and a user
+gain curve's own cost (:mod:`livedyn.bench.bare`); ``ctwin``: the numba kernels against the plain-C twins alone, both timed from
 native block loops. ``livedyn bench`` runs the same harness with the live runs besides.
 """
 from __future__ import annotations
@@ -70,6 +71,14 @@ def main(argv=None):
     try:
         rows = run_kernels(quick=args.quick, blocksizes=blocksizes, channels=args.channels,
                            samplerate=args.samplerate, seconds=args.seconds, wide=args.wide)
+        precision = None
+        if args.channels == 2:
+            from .bare import run_precision
+
+            precision = run_precision(quick=args.quick, blocksizes=blocksizes,
+                                      samplerate=args.samplerate, wide=args.wide)
+        else:
+            print(f"(no bare-C table: its loops are stereo; --channels {args.channels})")
     except ValueError as exc:
         print(f"bench kernels: {exc}", file=sys.stderr)
         return 2
@@ -78,10 +87,13 @@ def main(argv=None):
         info["load_average_at_start"] = before["load_average_1_5_15"]
         settings = dict(quick=args.quick, blocksizes=list(blocksizes), channels=args.channels,
                         samplerate=args.samplerate, seconds=args.seconds)
+        doc = report(rows, info, settings, precision)
         with open(args.json, "w", encoding="utf-8") as f:
-            json.dump(report(rows, info, settings), f, indent=1, allow_nan=False)
+            json.dump(doc, f, indent=1, allow_nan=False)
             f.write("\n")
-    return 1 if any(r["check"] != "ok" for r in rows) else 0
+    bad = any(r["check"] != "ok" for r in rows) or (precision is not None
+                                                    and not precision["ok"])
+    return 1 if bad else 0
 
 
 if __name__ == "__main__":

@@ -44,7 +44,7 @@ import numpy as np
 from ..shipped import cache_folder, ctwin_source
 
 __all__ = ["CFLAGS", "CTwin", "CTwinUnavailable", "build", "compiler_line", "consts_header",
-           "find_compiler", "load", "numba_drive_timed", "unavailable_reason"]
+           "find_compiler", "load", "load_library", "numba_drive_timed", "unavailable_reason"]
 
 SOURCE = ctwin_source()
 BUILD_DIR = cache_folder("ctwin")
@@ -149,8 +149,12 @@ def _compiler_version(cc):
         return ""
 
 
-def build(build_dir=None, cc=None, force=False):
+def build(build_dir=None, cc=None, force=False, *, source=None, stem="ctwin", what="C twin"):
     """Compile the C twin into ``build_dir`` (if not already there); the library's path.
+
+    The same machinery builds the bare-C loops (:mod:`livedyn.bench.bare`): ``source``, ``stem``
+    (the library's and its header copy's file name start) and ``what`` (the notes' subject)
+    name another source, which includes the same generated header.
 
     Parameters
     ----------
@@ -173,29 +177,33 @@ def build(build_dir=None, cc=None, force=False):
     """
     cc = cc or find_compiler()
     if cc is None:
-        raise CTwinUnavailable("C twin skipped: no C compiler found (set CC, or install gcc)")
+        raise CTwinUnavailable(f"{what} skipped: no C compiler found (set CC, or install gcc)")
     build_dir = Path(build_dir) if build_dir is not None else BUILD_DIR
     header = consts_header()
-    source = SOURCE.read_text(encoding="utf-8")
+    source_path = Path(source) if source is not None else SOURCE
+    # the source and the headers beside it (a source may include its own), in the key
+    text = "\0".join(f.read_text(encoding="utf-8") for f in
+                      [source_path, *sorted(source_path.parent.glob("*.h"))])
     key = hashlib.sha256("\0".join(
-        [source, header, cc, _compiler_version(cc), " ".join(CFLAGS), _cpu_id()]).encode()
+        [text, header, cc, _compiler_version(cc), " ".join(CFLAGS), _cpu_id()]).encode()
     ).hexdigest()[:16]
-    lib = build_dir / f"ctwin-{key}.so"
+    lib = build_dir / f"{stem}-{key}.so"
     if lib.exists() and not force:
         return lib
     build_dir.mkdir(parents=True, exist_ok=True)
     with tempfile.TemporaryDirectory(dir=build_dir) as tmp:
         (Path(tmp) / HEADER_NAME).write_text(header, encoding="utf-8")
         out = Path(tmp) / lib.name
-        cmd = [cc, *CFLAGS, "-I", tmp, "-o", str(out), str(SOURCE), *LIBS]
+        cmd = [cc, *CFLAGS, "-I", tmp, "-I", str(source_path.parent), "-o", str(out),
+               str(source_path), *LIBS]
         try:
             r = subprocess.run(cmd, capture_output=True, text=True, timeout=300)
         except (OSError, subprocess.SubprocessError) as exc:
-            raise CTwinUnavailable(f"C twin skipped: {cc} could not run: {exc}") from None
+            raise CTwinUnavailable(f"{what} skipped: {cc} could not run: {exc}") from None
         if r.returncode != 0:
             first = (r.stderr.strip().splitlines() or ["(no message)"])[0]
-            raise CTwinUnavailable(f"C twin skipped: {cc} failed ({r.returncode}): {first}")
-        (build_dir / f"ctwin-{key}.h").write_text(header, encoding="utf-8")  # for reading
+            raise CTwinUnavailable(f"{what} skipped: {cc} failed ({r.returncode}): {first}")
+        (build_dir / f"{stem}-{key}.h").write_text(header, encoding="utf-8")  # for reading
         os.replace(out, lib)  # atomic: a parallel build never sees half a library
     return lib
 
@@ -299,14 +307,21 @@ def load(build_dir=None, cc=None):
     CTwinUnavailable
         With a one-line note when there is no compiler or the build fails.
     """
-    k = (str(build_dir), cc)
+    return load_library(CTwin, build_dir, cc)
+
+
+def load_library(cls, build_dir=None, cc=None, **build_kw):
+    """``cls(build(build_dir, cc, **build_kw))``, once per class, folder and compiler; a failed
+    build or load is remembered and raised again as :class:`CTwinUnavailable`."""
+    k = (cls, str(build_dir), cc)
     if k not in _LOADED:
+        what = build_kw.get("what", "C twin")
         try:
-            _LOADED[k] = CTwin(build(build_dir, cc))
+            _LOADED[k] = cls(build(build_dir, cc, **build_kw))
         except CTwinUnavailable as exc:
             _LOADED[k] = exc
         except OSError as exc:
-            _LOADED[k] = CTwinUnavailable(f"C twin skipped: could not load the library: {exc}")
+            _LOADED[k] = CTwinUnavailable(f"{what} skipped: could not load the library: {exc}")
     v = _LOADED[k]
     if isinstance(v, Exception):
         raise v

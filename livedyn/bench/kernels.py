@@ -209,18 +209,19 @@ def check_case(s, frames, blocksize):
     )
 
 
-def _compare(y_ref, y, n, label):
-    """Largest difference, agreement, and a one-line mismatch note (None when it agrees)."""
+def _compare(y_ref, y, n, label, tolerance=TOLERANCE):
+    """Largest difference, agreement (within ``tolerance``), and a one-line mismatch note (None
+    when it agrees)."""
     diff = np.abs(y_ref[:n].astype(np.float64) - y[:n].astype(np.float64))
     max_diff = float(np.nanmax(diff)) if n else 0.0
     if np.isnan(diff).any():
         max_diff = math.inf
-    ok = max_diff <= TOLERANCE
+    ok = max_diff <= tolerance
     note = None
     if not ok:
         i, c = np.unravel_index(int(np.argmax(np.where(np.isnan(diff), np.inf, diff))), diff.shape)
-        bad = int(np.count_nonzero(~(diff <= TOLERANCE)))
-        note = (f"{bad} samples differ by more than {TOLERANCE:g}; the largest at frame {i}, "
+        bad = int(np.count_nonzero(~(diff <= tolerance)))
+        note = (f"{bad} samples differ by more than {tolerance:g}; the largest at frame {i}, "
                 f"channel {c}: kernel {float(y_ref[i, c]):.9g}, {label} {float(y[i, c]):.9g}")
     return max_diff, ok, note
 
@@ -520,6 +521,17 @@ CTWIN_ROW_KEYS = (
 )
 
 
+def checked_runs(blocksizes, repeats):
+    """The block sizes as a list of whole numbers and the repeats, each checked (>= 1)."""
+    blocksizes = [int(b) for b in blocksizes]
+    for b in blocksizes:
+        if b < 1:
+            raise ValueError(f"blocksize = {b}: expected a whole number of frames >= 1")
+    if int(repeats) < 1:
+        raise ValueError(f"repeats = {repeats}: expected >= 1")
+    return blocksizes, int(repeats)
+
+
 class CPair:
     """One case timed both ways from identical fresh state, each from its native block loop."""
 
@@ -613,13 +625,8 @@ def run_ctwin(quick=False, blocksizes=(64, 1024), channels=2, samplerate=48000, 
     """
     progress = progress or (lambda msg: None)
     seconds = (1.0 if quick else DEFAULT_SECONDS) if seconds is None else float(seconds)
-    repeats = (5 if quick else 15) if repeats is None else int(repeats)
-    blocksizes = [int(b) for b in blocksizes]
-    for b in blocksizes:
-        if b < 1:
-            raise ValueError(f"blocksize = {b}: expected a whole number of frames >= 1")
-    if repeats < 1:
-        raise ValueError(f"repeats = {repeats}: expected >= 1")
+    blocksizes, repeats = checked_runs(blocksizes, (5 if quick else 15) if repeats is None
+                                       else repeats)
     info = machine_info()
     note = None
     if lib is None:
@@ -864,7 +871,12 @@ def _clean_json(v):
     return v
 
 
-def report(rows, info=None, settings=None):
-    """The JSON document of a run: machine info, run settings and the rows (strict JSON)."""
-    return _clean_json(dict(benchmark="kernels", machine=info or machine_info(),
-                            settings=settings or {}, rows=rows))
+def report(rows, info=None, settings=None, precision=None):
+    """The JSON document of a run: machine info, run settings and the rows (strict JSON);
+    with ``precision`` (what :func:`livedyn.bench.bare.run_precision` returns) also its
+    ``bare`` rows (numba against bare C, per precision) and ``curves`` rows."""
+    doc = dict(benchmark="kernels", machine=info or machine_info(), settings=settings or {},
+               rows=rows)
+    if precision is not None:
+        doc.update(bare=precision["bare"], curves=precision["curves"])
+    return _clean_json(doc)
