@@ -143,3 +143,35 @@ def test_the_algorithm_changed_from_the_console_by_name_and_by_file(jack_server)
     assert "release_fast" in m.names  # the console took the file's parameters
     flat = [" ".join(s.split()) for s in screens]
     assert any("release_fast" in f for f in flat)
+
+
+def test_the_precision_changed_from_the_console(jack_server):
+    """README "Precision": `precision float32` at the console is a crossfaded swap of the
+    running algorithm; the title says (float32); a wrong word is one line."""
+    if shutil.which("jackd") is None:
+        pytest.skip("jackd not installed")
+    from livedyn.engine import callback as cb
+    from livedyn.engine.engine import ArraySource, Engine
+
+    rng = np.random.default_rng(9)
+    music = (0.1 * rng.standard_normal((FS, 2))).astype(np.float32)
+    eng = Engine(livedyn.Processor("compressor", FS, 2, threshold=-30), 64, device="system",
+                 main_source=ArraySource(music, loop=True))
+    eng.start()
+    m = ConsoleModel(eng)
+    try:
+        assert _wait(lambda: eng.stats[cb.S_BLOCKS] > 20)
+        app, _, screens = drive(eng, [":precision float32\r", "", ":precision half\r",
+                                      ":precision float32\r", "", ":quit\r"],
+                                model=m, timeout=60)
+    finally:
+        eng.stop()
+    texts = [t for _, _, t, _ in m.log.entries]
+    assert any(t.startswith("precision float32 crossfaded in (was float64)") for t in texts)
+    assert any(t == "precision: already float32" for t in texts)
+    errors = [t for _, k, t, _ in m.log.entries if k == "error"]
+    assert any("half" in t for t in errors), errors
+    assert eng.proc.precision == "float32" and eng.get("threshold") == -30.0
+    assert [s["precision"] for s in eng.swap_log] == ["float32"]
+    flat = [" ".join(s.split()) for s in screens]
+    assert any("compressor (float32)" in f for f in flat)
