@@ -58,6 +58,11 @@ def _child(path, job, wfd, memory):
     """In the forked child: run ``job()``, write one JSON line, leave with os._exit."""
     code = 0
     try:
+        import faulthandler
+
+        # a crash of the user's code is the parent's one refusing line, not a traceback dump
+        # of this child (faulthandler, when the parent had it on, would print one)
+        faulthandler.disable()
         try:
             import resource
 
