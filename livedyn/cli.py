@@ -650,7 +650,7 @@ def _cmd_run(args):
         device=args.device if not args.headless else None, input_device=args.input_device,
         output_device=args.output_device, main_inputs=main_in, key_inputs=key_in, outputs=outs,
         main_source=main_src, key_source=key_src, record_dir=args.record, monitor=args.monitor,
-        output_level_db=out_level)
+        output_level_db=out_level, variants=not args.general_kernel)
     print(f"{proc.algorithm.name}" + (f" ({proc.precision})" if proc.precision != "float64"
                                       else "") + ": " +
           ", ".join(f"{k} {v}" for k, v in proc.describe().items()), flush=True)
@@ -1035,7 +1035,8 @@ def build_parser():
     pa.add_argument("input", metavar="IN.wav", nargs="*",
                     help="also audit these files (after the test programme)")
     pa.add_argument("--key", metavar="KEY.wav",
-                    help="key input for the files, when the algorithm takes one")
+                    help="key input for the files, when the algorithm takes one; default "
+                         "none (the test programme brings its own key)")
     pa.add_argument("--samplerate", type=float, default=48000.0,
                     help="Hz of the test programme (default 48000)")
     pa.add_argument("--channels", type=int, default=2, choices=range(1, 9), metavar="N",
@@ -1043,7 +1044,7 @@ def build_parser():
     pa.add_argument("--every", action="store_true",
                     help="audit every shipped preset and every example algorithm file")
     pa.add_argument("--plot", metavar="FILE.png",
-                    help="draw the differences over time (needs matplotlib)")
+                    help="draw the differences over time (needs matplotlib); default none")
     pa.set_defaults(func=cmd_precision_audit)
 
     d = sub.add_parser("demo", help="the rehearsal demo: live ducking, then offline renders",
@@ -1146,6 +1147,10 @@ def build_parser():
                           "livedyn asks for both where the system allows it)")
     rtg.add_argument("--realtime", action="store_true",
                      help="the default (kept so that older scripts still run)")
+    rn.add_argument("--general-kernel", action="store_true",
+                    help="keep the general kernel: do not compile and install the kernel "
+                         "variant of the setting (by default livedyn does, off the audio "
+                         "thread; the output is the same, the CPU time less)")
     rn.set_defaults(func=cmd_run)
 
     bn = sub.add_parser("bench", help="what an algorithm costs, stream headroom, swaps, latency",

@@ -70,6 +70,7 @@ class Processor:
         self.channels = int(channels)
         self.key_channels = int(key_channels)
         self._kernel = self.algorithm.kernel(self.precision)
+        self._variant = None  # the kernel compiled for one setting (specialise())
 
         self.p = np.zeros(NPARAM, dtype=np.float64)
         for prm in ALL.values():  # every slot sane, also those this algorithm lacks
@@ -240,6 +241,33 @@ class Processor:
         """Largest gain reduction in the last processed block, dB (>= 0)."""
         return float(self.st[L.S_GR_MAX, 0])
 
+    # -- variants -----------------------------------------------------------------------------
+    def specialise(self):
+        """Compile (or load from the cache) the kernel variant for the current structural
+        choices (law, detector, ballistics, domain, topology, key, link, key filters, user
+        stages; see :mod:`livedyn.dsp.variants`): it runs only the code they use, with the
+        general kernel's output bit for bit. Later :meth:`process` calls with the same choices
+        run it; other choices run the general kernel. Returns the variant's module, or None
+        for an algorithm without variants (the limiter, a file's whole kernel)."""
+        if self.algorithm.kind != "dynamics":
+            return None
+        from .dsp.dynamics import dynamics_modes
+        from .dsp.variants import dynamics_variant
+
+        self._variant = dynamics_variant(int(dynamics_modes(self.p)), self.precision)
+        return self._variant
+
+    def kernel_now(self):
+        """The kernel :meth:`process` runs with the current values: the variant made by
+        :meth:`specialise` while the structural choices are its own, else the general one."""
+        v = self._variant
+        if v is not None:
+            from .dsp.dynamics import dynamics_modes
+
+            if dynamics_modes(self.p) == v.MODES:
+                return v.dynamics_block
+        return self._kernel
+
     # -- processing ---------------------------------------------------------------------------
     def _prepare(self, x, key):
         x = np.asarray(x)
@@ -272,7 +300,7 @@ class Processor:
         """Process a block: float32 (frames, channels) in, same shape out."""
         x, k, squeeze = self._prepare(x, key)
         out = self._new_out(x)
-        self._kernel(x, k, out, self.p, self.st, self.ring, self._no_trace)
+        self.kernel_now()(x, k, out, self.p, self.st, self.ring, self._no_trace)
         return out[:, 0] if squeeze else out
 
     def process_traced(self, x, key=None):
@@ -285,7 +313,7 @@ class Processor:
         x, k, squeeze = self._prepare(x, key)
         out = self._new_out(x)
         tr = np.zeros((L.NTRACE, x.shape[0], self.st.shape[1]), dtype=np.float64)
-        self._kernel(x, k, out, self.p, self.st, self.ring, tr)
+        self.kernel_now()(x, k, out, self.p, self.st, self.ring, tr)
         ngain = self.channels if int(self.p[P_LINK]) == LINK_NONE else 1
         nkey = ngain if self.algorithm.kind == "limiter" else k.shape[1]
         traces = {}

@@ -112,14 +112,15 @@ def test_the_midi_port_changed_from_the_console(jack_server):
     assert any("~cc40/1" in f for f in flat)  # the mapping beside the parameter
 
 
-@pytest.mark.jack(capture=2, playback=2)
-def test_the_algorithm_changed_from_the_console_by_name_and_by_file(jack_server):
+def _console_on_a_compressor(keys, seed):
+    """Type ``keys`` into the console of a running compressor (threshold -30) on the system
+    device; returns the model, the stopped engine and the screens."""
     if shutil.which("jackd") is None:
         pytest.skip("jackd not installed")
     from livedyn.engine import callback as cb
     from livedyn.engine.engine import ArraySource, Engine
 
-    rng = np.random.default_rng(8)
+    rng = np.random.default_rng(seed)
     music = (0.1 * rng.standard_normal((FS, 2))).astype(np.float32)
     eng = Engine(livedyn.Processor("compressor", FS, 2, threshold=-30), 64, device="system",
                  main_source=ArraySource(music, loop=True))
@@ -127,12 +128,17 @@ def test_the_algorithm_changed_from_the_console_by_name_and_by_file(jack_server)
     m = ConsoleModel(eng)
     try:
         assert _wait(lambda: eng.stats[cb.S_BLOCKS] > 20)
-        app, _, screens = drive(eng, [":algorithm limiter\r", "", ":algorithm nosuch\r",
-                                      f":algorithm {EXAMPLE}\r", "", ":quit\r"],
-                                model=m, timeout=60)
-        snap = eng.snapshot()
+        _, _, screens = drive(eng, keys, model=m, timeout=60)
     finally:
         eng.stop()
+    return m, eng, screens
+
+
+@pytest.mark.jack(capture=2, playback=2)
+def test_the_algorithm_changed_from_the_console_by_name_and_by_file(jack_server):
+    m, eng, screens = _console_on_a_compressor(
+        [":algorithm limiter\r", "", ":algorithm nosuch\r", f":algorithm {EXAMPLE}\r", "",
+         ":quit\r"], seed=8)
     texts = [t for _, _, t, _ in m.log.entries]
     assert any(t.startswith("algorithm limiter crossfaded in (was compressor)") for t in texts)
     assert any("nosuch" in t for _, k, t, _ in m.log.entries if k == "error")
@@ -145,27 +151,13 @@ def test_the_algorithm_changed_from_the_console_by_name_and_by_file(jack_server)
     assert any("release_fast" in f for f in flat)
 
 
+@pytest.mark.jack(capture=2, playback=2)
 def test_the_precision_changed_from_the_console(jack_server):
     """README "Precision": `precision float32` at the console is a crossfaded swap of the
     running algorithm; the title says (float32); a wrong word is one line."""
-    if shutil.which("jackd") is None:
-        pytest.skip("jackd not installed")
-    from livedyn.engine import callback as cb
-    from livedyn.engine.engine import ArraySource, Engine
-
-    rng = np.random.default_rng(9)
-    music = (0.1 * rng.standard_normal((FS, 2))).astype(np.float32)
-    eng = Engine(livedyn.Processor("compressor", FS, 2, threshold=-30), 64, device="system",
-                 main_source=ArraySource(music, loop=True))
-    eng.start()
-    m = ConsoleModel(eng)
-    try:
-        assert _wait(lambda: eng.stats[cb.S_BLOCKS] > 20)
-        app, _, screens = drive(eng, [":precision float32\r", "", ":precision half\r",
-                                      ":precision float32\r", "", ":quit\r"],
-                                model=m, timeout=60)
-    finally:
-        eng.stop()
+    m, eng, screens = _console_on_a_compressor(
+        [":precision float32\r", "", ":precision half\r", ":precision float32\r", "",
+         ":quit\r"], seed=9)
     texts = [t for _, _, t, _ in m.log.entries]
     assert any(t.startswith("precision float32 crossfaded in (was float64)") for t in texts)
     assert any(t == "precision: already float32" for t in texts)

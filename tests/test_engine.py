@@ -146,13 +146,15 @@ DUCK_CHANGES = [(0.7, "threshold", -45.0), (1.0, "range", 20.0), (1.3, "release"
                 (1.6, "threshold", -25.0), (1.9, "range", 6.0), (2.2, "release", 40.0)]
 
 
-def _live_run(rec, algorithm, settings, changes, main, key, kch, precision="float64"):
+def _live_run(rec, algorithm, settings, changes, main, key, kch, precision="float64",
+              variants=False):
     """One live run of the processor on the sources, recorded, with changes from a thread."""
     from livedyn.dsp.precision import job_for
 
     proc = livedyn.Processor(algorithm, FS, 2, kch, precision=precision, **settings)
     eng = Engine(proc, BS, main_source=ArraySource(main),
-                 key_source=ArraySource(key) if key is not None else None, record_dir=rec)
+                 key_source=ArraySource(key) if key is not None else None, record_dir=rec,
+                 variants=variants)
     # The kernel behind the callback's one indirect call (see test 2) is one of the job cfuncs,
     # of the processor's precision.
     jobs = (job_for("dynamics", precision).address, job_for("limiter", precision).address)
@@ -175,16 +177,28 @@ def _live_run(rec, algorithm, settings, changes, main, key, kch, precision="floa
     return proc, eng, snap, seqs, rec
 
 
-@pytest.mark.parametrize("algorithm,precision", [("compressor", "float64"),
-                                                 ("ducker", "float64"),
-                                                 ("compressor", "float32")])
+@pytest.mark.parametrize("algorithm,precision,variants", [("compressor", "float64", False),
+                                                          ("ducker", "float64", False),
+                                                          ("compressor", "float32", False),
+                                                          ("compressor", "float64", True)])
 def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_path, algorithm,
-                                                            precision):
+                                                            precision, variants):
     rng = np.random.default_rng(7)
     seconds = 2.6
     main = _bursts(rng, seconds, 2)
     if algorithm == "compressor":
         settings, changes, key, kch = COMP_SETTINGS, COMP_CHANGES, None, 0
+        if variants:
+            # changes of setting while variants are installed: the running variant hands a
+            # block of another setting to the general kernel until that setting's variant is
+            # in (both made here first, so that the run sees them installed)
+            from livedyn.dsp.dynamics import dynamics_modes
+            from livedyn.dsp.variants import dynamics_variant
+
+            for det in ("peak", "rms"):
+                p = livedyn.Processor(algorithm, FS, 2, detector=det, **settings).p
+                dynamics_variant(int(dynamics_modes(p)), precision)
+            changes = sorted(changes + [(1.05, "detector", 1.0), (1.85, "detector", 0.0)])
     else:
         settings, changes, kch = DUCK_SETTINGS, DUCK_CHANGES, 1
         gate = np.repeat(rng.uniform(0, 1, 26) > 0.5, int(0.1 * FS))[:len(main)]
@@ -193,7 +207,7 @@ def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_pat
         # A run in which the machine starved the feeder or the recorder (input not as the
         # source, or tap blocks dropped) says nothing about the processing: run it again.
         proc, eng, snap, seqs, rec = _live_run(tmp_path / f"live{attempt}", algorithm, settings,
-                                              changes, main, key, kch, precision)
+                                              changes, main, key, kch, precision, variants)
         xin = _wav(rec / "main.wav")
         if snap["tap_dropped_blocks"] == 0 and np.array_equal(xin[:len(main)], main):
             break
@@ -224,6 +238,8 @@ def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_pat
     body = slice(FADE, len(main))
     moved = np.abs(live[body] - xin[body.start - lat:body.stop - lat])
     assert moved.max() > 0.05
+    if variants:  # variants ran: the first setting's, and one installed after a change
+        assert len(eng._mem.variants) >= 2, eng._mem.variants
 
 
 # ---------------------------------------------------------------------------------------------

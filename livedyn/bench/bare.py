@@ -89,14 +89,18 @@ BARE_CASES = (
 def make_processor(algorithm, samplerate, channels, key_channels=0, precision="float64",
                    **settings):
     """A Processor in ``precision`` ("float64" or "float32"); a user file (or its Algorithm)
-    is loaded in that precision first."""
+    is loaded in that precision first. Its kernel variant for the setting is made
+    (:meth:`Processor.specialise`), as the live engine installs it: ``kernel_now()`` is what
+    is timed."""
     from livedyn.loader import get
     from livedyn.processor import Processor
 
     if precision not in PRECISIONS:
         raise ValueError(f"precision = {precision!r}: expected one of {', '.join(PRECISIONS)}")
-    return Processor(get(algorithm, precision), samplerate, channels, key_channels,
+    proc = Processor(get(algorithm, precision), samplerate, channels, key_channels,
                      precision=precision, **settings)
+    proc.specialise()
+    return proc
 
 
 # ---- the library ----------------------------------------------------------------------------
@@ -220,7 +224,7 @@ class Pair:
         self.config = config or case.config
         self.proc = proc or make_processor(case.algorithm, samplerate, 2, case.key_channels,
                                            precision, **case.settings)
-        self.kernel = self.proc._kernel
+        self.kernel = self.proc.kernel_now()
         self.p = self.proc.p.copy()
         self.p_bare = self.proc.p.copy()
         self.st0, self.ring0 = self.proc.st.copy(), self.proc.ring.copy()
@@ -491,7 +495,8 @@ class Run:
         if self.proc is not None:
             np.copyto(self.st, self.st0)
             np.copyto(self.ring, self.ring0)
-            ns = numba_ns(self.lib, self.proc._kernel, x, key, out, self.p, self.st, self.ring,
+            ns = numba_ns(self.lib, self.proc.kernel_now(), x, key, out, self.p, self.st,
+                          self.ring,
                           self.proc._no_trace, self.bs)
         else:
             s = self.lib.state(self.config, self.precision, self.p)

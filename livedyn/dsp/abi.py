@@ -46,6 +46,8 @@ class J(IntEnum):
     ST = 8; STR = 9; STC = 10  # noqa: E702
     RING = 11; RINGR = 12; RINGC = 13  # noqa: E702
     TR = 14; TRN = 15; TRC = 16  # trace buffer; TRN = frames to trace (0: none)  # noqa: E702
+    FALLBACK = 17  # the general kernel's job function: a variant's job calls it for another
+    #                setting (livedyn.dsp.variants)
 
 
 JOB_SIZE = 24

@@ -130,13 +130,67 @@ def next_delay(st, d_new, fs):
         st[S_XF, 0] = xfade_len(fs)
 
 
+# Bits of the structural choices a block runs with (dynamics_modes): a variant compiled for
+# one value of them (livedyn.dsp.variants) runs only the code those choices use.
+M_LAW = 7  # bits 0-2: the gain law
+M_RMS = 1 << 3
+M_DECOUPLED = 1 << 4
+M_LINEAR = 1 << 5
+M_FEEDBACK = 1 << 6
+M_EXTERNAL = 1 << 7
+M_LINK_SHIFT = 8  # bits 8-9: the channel link
+M_AUTOMAKEUP = 1 << 10
+M_HPF = 1 << 11
+M_LPF = 1 << 12
+M_BPF = 1 << 13
+M_USER_DETECTOR = 1 << 14
+M_USER_SMOOTHER = 1 << 15
+
+
+@nb.njit(**JIT)
+def dynamics_modes(p):
+    """The structural choices of parameter array ``p`` as one integer of M_* bits: the gain
+    law, the detector, ballistics, domain, topology and key, the link, automatic makeup, which
+    key filters are on and which user stages there are."""
+    law = int(p[P_LAW])
+    user_det = p[P_USER_DETECTOR] != 0.0
+    comp_like = law == LAW_COMPRESSOR or law == LAW_USER
+    m = law
+    if int(p[P_DETECTOR]) == DETECTOR_RMS and not user_det:
+        m |= M_RMS
+    if int(p[P_BALLISTICS]) == BALLISTICS_DECOUPLED and (comp_like or law == LAW_DUCKER):
+        m |= M_DECOUPLED
+    if int(p[P_DOMAIN]) == DOMAIN_LINEAR and comp_like:
+        m |= M_LINEAR
+    feedback = int(p[P_TOPOLOGY]) == TOPOLOGY_FEEDBACK and comp_like
+    if feedback:
+        m |= M_FEEDBACK
+    if int(p[P_KEY]) == KEY_EXTERNAL and not feedback:
+        m |= M_EXTERNAL
+    m |= int(p[P_LINK]) << M_LINK_SHIFT
+    if p[P_AUTOMAKEUP] > 0.5 and law == LAW_COMPRESSOR:
+        m |= M_AUTOMAKEUP
+    if p[P_KEY_HPF] > 0.0:
+        m |= M_HPF
+    if p[P_KEY_LPF] > 0.0:
+        m |= M_LPF
+    if p[P_KEY_BPF] > 0.0:
+        m |= M_BPF
+    if user_det:
+        m |= M_USER_DETECTOR
+    if p[P_USER_SMOOTHER] != 0.0:
+        m |= M_USER_SMOOTHER
+    return m
+
+
 @nb.njit(**JIT)
 def dynamics_block(x, key, out, p, st, ring, tr):
     """Process one block. See livedyn.dsp.layout for the argument contract."""
     frames = x.shape[0]
     ch = x.shape[1]
     fs = p[P_SAMPLERATE]
-    law = int(p[P_LAW])
+    modes = dynamics_modes(p)  # (a variant for one value of the modes has a constant here)
+    law = modes & M_LAW
     tracing = tr.shape[1] >= frames and frames > 0
 
     # ---- block boundary: coefficients and modes --------------------------------------------
@@ -145,18 +199,17 @@ def dynamics_block(x, key, out, p, st, ring, tr):
     a_rms = one_pole_coeff(p[P_RMS_TIME], fs)
     g_glide = 1.0 - one_pole_coeff(GLIDE_MS, fs)
     hold_n = math.floor(p[P_HOLD] * fs / 1000.0 + 0.5)
-    user_det = p[P_USER_DETECTOR] != 0.0
-    user_smooth = p[P_USER_SMOOTHER] != 0.0
+    user_det = (modes & M_USER_DETECTOR) != 0
+    user_smooth = (modes & M_USER_SMOOTHER) != 0
     nstate = (st.shape[0] - NROWS) // 2  # a user algorithm's declared state per channel
     s_off = NROWS * st.shape[1]
-    rms = int(p[P_DETECTOR]) == DETECTOR_RMS and not user_det
-    comp_like = law == LAW_COMPRESSOR or law == LAW_USER
-    decoupled = int(p[P_BALLISTICS]) == BALLISTICS_DECOUPLED and (comp_like or law == LAW_DUCKER)
-    linear = int(p[P_DOMAIN]) == DOMAIN_LINEAR and comp_like
-    feedback = int(p[P_TOPOLOGY]) == TOPOLOGY_FEEDBACK and comp_like
-    external = int(p[P_KEY]) == KEY_EXTERNAL and not feedback
-    link = int(p[P_LINK])
-    automakeup = p[P_AUTOMAKEUP] > 0.5 and law == LAW_COMPRESSOR
+    rms = (modes & M_RMS) != 0
+    decoupled = (modes & M_DECOUPLED) != 0
+    linear = (modes & M_LINEAR) != 0
+    feedback = (modes & M_FEEDBACK) != 0
+    external = (modes & M_EXTERNAL) != 0
+    link = (modes >> M_LINK_SHIFT) & 3
+    automakeup = (modes & M_AUTOMAKEUP) != 0
     gate_like = law == LAW_EXPANDER or law == LAW_GATE
     # Direction of the gain-domain ballistics: "down" = toward more attenuation.
     if gate_like:
@@ -165,9 +218,9 @@ def dynamics_block(x, key, out, p, st, ring, tr):
     else:
         a_down = a_att
         a_up = a_rel
-    hp_on = p[P_KEY_HPF] > 0.0
-    lp_on = p[P_KEY_LPF] > 0.0
-    bp_on = p[P_KEY_BPF] > 0.0
+    hp_on = (modes & M_HPF) != 0
+    lp_on = (modes & M_LPF) != 0
+    bp_on = (modes & M_BPF) != 0
     if hp_on:
         biquad_highpass(st, C_HPF, p[P_KEY_HPF], BUTTERWORTH_Q, fs)
     if lp_on:

@@ -156,11 +156,15 @@ class _ToFloat32(ast.NodeTransformer):
         return node
 
 
-def rewrite(source, modules=None, arrays=None):
-    """``source`` (a module's text) rewritten for float32; ``modules`` maps a relative import
-    (``".stages"``) to the absolute module name to import instead."""
+def rewrite(source, modules=None, arrays=None, single=True, transform=None):
+    """``source`` (a module's text) rewritten for float32 (``single``; otherwise only its
+    imports); ``modules`` maps a relative import (``".stages"``) to the absolute module name to
+    import instead; ``transform`` (an ast.NodeTransformer) runs first."""
     tree = ast.parse(source)
-    tree = _ToFloat32(arrays).visit(tree)
+    if transform is not None:
+        tree = transform.visit(tree)
+    if single:
+        tree = _ToFloat32(arrays).visit(tree)
     for node in ast.walk(tree):
         if isinstance(node, ast.ImportFrom) and node.level:
             rel = "." * node.level + (node.module or "")
@@ -248,10 +252,20 @@ def _digest():
 _LOADED = {}
 
 
-def _folder():
+_FOLDERS = {}
+
+
+def _folder(kind="float32"):
+    """The cache folder of generated modules of ``kind`` for these dsp sources."""
+    if kind not in _FOLDERS:
+        _FOLDERS[kind] = _make_folder(kind)
+    return _FOLDERS[kind]
+
+
+def _make_folder(kind):
     from ..shipped import cache_folder
 
-    d = cache_folder("float32", _digest())
+    d = cache_folder(kind, _digest())
     try:
         d.mkdir(parents=True, exist_ok=True)
         probe = d / f".probe-{os.getpid()}"
@@ -259,7 +273,7 @@ def _folder():
         probe.unlink()
         return d
     except OSError:  # no writable cache: a private folder (compiled again next run)
-        return Path(tempfile.mkdtemp(prefix="livedyn-float32-"))
+        return Path(tempfile.mkdtemp(prefix=f"livedyn-{kind}-"))
 
 
 def _write_if_changed(path, text):
@@ -275,6 +289,35 @@ def _write_if_changed(path, text):
     os.replace(tmp, path)
 
 
+def module_text(name, precision, transform=None):
+    """The text of ``livedyn.dsp.<name>`` (one of MODULES) in ``precision``, importing the
+    float32 variants of its siblings in float32 (made first) and livedyn's own modules by
+    absolute name; ``transform`` (an ast.NodeTransformer) is applied first. For the variant
+    modules of :mod:`livedyn.dsp.variants`."""
+    if name not in MODULES:
+        raise ValueError(f"no generated variant of {name!r}")
+    here = Path(__file__).resolve().parent
+    source = (here / f"{name}.py").read_text(encoding="utf-8")
+    if precision == "float64":
+        return rewrite(source, single=False, transform=transform)
+    modules = {f".{dep}": module32(dep).__name__ for dep in MODULES[:MODULES.index(name)]}
+    return rewrite(source, modules, transform=transform)
+
+
+def import_text(folder, modname, text, to_single):
+    """Write ``text`` as ``folder/modname.py`` (unless it holds it already) and import it; its
+    top-level floats become float32 when ``to_single``."""
+    path = folder / f"{modname}.py"
+    _write_if_changed(path, text)
+    spec = importlib.util.spec_from_file_location(modname, path)
+    mod = importlib.util.module_from_spec(spec)
+    sys.modules[modname] = mod
+    spec.loader.exec_module(mod)
+    if to_single:
+        single(mod)
+    return mod
+
+
 def module32(name):
     """The float32 variant of ``livedyn.dsp.<name>`` (one of MODULES), made on first use."""
     if name in _LOADED:
@@ -282,22 +325,8 @@ def module32(name):
     if name not in MODULES:
         raise ValueError(f"no float32 variant of {name!r}")
     folder = _folder()
-    tag = folder.name
-    here = Path(__file__).resolve().parent
-    modules = {}
-    for dep in MODULES[:MODULES.index(name) + 1]:
-        modules[f".{dep}"] = f"livedyn_f32_{tag}_{dep}"
-    for dep in MODULES[:MODULES.index(name)]:
-        module32(dep)
-    modname = modules[f".{name}"]
-    text = rewrite((here / f"{name}.py").read_text(encoding="utf-8"), modules)
-    path = folder / f"{modname}.py"
-    _write_if_changed(path, text)
-    spec = importlib.util.spec_from_file_location(modname, path)
-    mod = importlib.util.module_from_spec(spec)
-    sys.modules[modname] = mod
-    spec.loader.exec_module(mod)
-    single(mod)
+    modname = f"livedyn_f32_{folder.name}_{name}"
+    mod = import_text(folder, modname, module_text(name, "float32"), True)
     _LOADED[name] = mod
     return mod
 
@@ -336,14 +365,9 @@ def job_for(kind, precision="float64"):
     if "jobs" not in _LOADED:
         dyn, lim = module32("dynamics"), module32("limiter")
         folder = Path(dyn.__file__).parent
-        modname = f"livedyn_f32_{folder.name}_jobs"
-        path = folder / f"{modname}.py"
-        _write_if_changed(path, _JOBS.format(dynamics=dyn.__name__, limiter=lim.__name__))
-        spec = importlib.util.spec_from_file_location(modname, path)
-        mod = importlib.util.module_from_spec(spec)
-        sys.modules[modname] = mod
-        spec.loader.exec_module(mod)
-        _LOADED["jobs"] = mod
+        _LOADED["jobs"] = import_text(folder, f"livedyn_f32_{folder.name}_jobs",
+                                      _JOBS.format(dynamics=dyn.__name__, limiter=lim.__name__),
+                                      False)
     jobs = _LOADED["jobs"]
     return jobs.job_limiter if kind == "limiter" else jobs.job_dynamics
 

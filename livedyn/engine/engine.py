@@ -60,6 +60,7 @@ class _Memory:
         self.slots = None  # the list of each kernel slot's processor (mutated in place)
         self.retired = None  # processors a swap let go of, kept until the next swap
         self.extra = None
+        self.variants = []  # every kernel variant installed in the table (never let go)
 
 
 class _Recording:
@@ -209,8 +210,9 @@ class Engine:
                  main_source=None, key_source=None, record_dir=None, ceiling_db=-1.0,
                  fade_in_ms=500.0, fade_out_ms=50.0, mute_ms=5.0, max_frames=8192,
                  monitor="out", meters=True, instances=1, realtime=True,
-                 output_level_db=0.0):
+                 output_level_db=0.0, variants=False):
         self.realtime = bool(realtime)
+        self.variants = bool(variants)  # install kernel variants of the setting (see start)
         self._memory = (False, "memory not locked (real time not asked)")
         self._rt_finder = rt.ThreadFinder()
         processor.p[P_OUTPUT_LEVEL] = OUTPUT_LEVEL.check(output_level_db)
@@ -427,6 +429,7 @@ class Engine:
         self._rec = _Recording()
         self._recording = False  # recordings were opened (the automation is written on stop)
         self._finalizer = None
+        self._installed = {}  # kernel slot -> (processor, setting) of its installed variant
         self._mem = _Memory()
         self._mem.arrays = [a for a in vars(self).values() if isinstance(a, np.ndarray)] + \
             [self.jobs, self.main_ring, self.key_ring, self.tap_ring]
@@ -452,6 +455,8 @@ class Engine:
         job[cb.J_ST], job[cb.J_STR], job[cb.J_STC] = st.ctypes.data, *st.shape
         job[cb.J_RING], job[cb.J_RINGR], job[cb.J_RINGC] = ring.ctypes.data, *ring.shape
         job[cb.J_TR], job[cb.J_TRN], job[cb.J_TRC] = self.trace.ctypes.data, 0, st.shape[1]
+        # a kernel variant's job calls the general one for a setting not its own
+        job[cb.J_FALLBACK] = _job_function(proc).address
 
     # ---- life cycle ---------------------------------------------------------------------------
     def _warm_callback(self):
@@ -501,8 +506,11 @@ class Engine:
         self.stream.start()
         self._rt_finder.begin(self.stats[cb.S_BLOCKS])
         me = weakref.ref(self)
-        for target, args in ((_feeder_loop, (me, self._stop_evt)),
-                             (_tap_loop, (me, self._stop_evt, self._rec))):
+        loops = [(_feeder_loop, (me, self._stop_evt)),
+                 (_tap_loop, (me, self._stop_evt, self._rec))]
+        if self.variants:
+            loops.append((_variant_loop, (me, self._stop_evt)))
+        for target, args in loops:
             t = threading.Thread(target=target, args=args, daemon=True,
                                  name=f"livedyn-{target.__name__.strip('_')}")
             t.start()
@@ -900,6 +908,51 @@ class Engine:
         self.ud[cb.U_CANARY_EVERY] = int(every_blocks)
 
     # ---- what the callback reports ------------------------------------------------------------
+    # ---- kernel variants -----------------------------------------------------------------------
+    def kernel_info(self):
+        """Which kernel the running slot calls: ``{"precision", "variant"}``, ``variant`` the
+        structural setting (livedyn.dsp.variants) of the installed variant, or None for the
+        general kernel."""
+        slot = int(self.ud[cb.U_KSLOT])
+        inst = self._installed.get(slot)
+        proc = self.proc
+        v = inst[1] if inst is not None and inst[0] is proc else None
+        return {"precision": proc.precision, "variant": v}
+
+    def install_variant(self):
+        """Compile (or load) the kernel variant of the running setting and install it in the
+        running slot's table entry; returns its setting, or None when there is none to
+        install. Off the audio thread (a variant's first compilation takes seconds; the
+        general kernel runs meanwhile). Changes of setting need no care: a variant's job runs
+        the general kernel for any other setting (livedyn.dsp.variants)."""
+        from ..dsp.dynamics import dynamics_modes
+        from ..dsp.variants import dynamics_variant, loaded
+
+        proc = self.proc
+        if proc.algorithm.kind != "dynamics" or self.stream is None:
+            return None
+        slot = int(self.ud[cb.U_KSLOT])
+        modes = int(dynamics_modes(self.pend))  # what the callback runs (a torn read of a
+        #                                         change being written only picks another one)
+        inst = self._installed.get(slot)
+        if inst is not None and inst[0] is proc and inst[1] == modes:
+            return modes
+        if loaded(modes, proc.precision) is None:
+            self.notice("info", "compiling a kernel for this setting (once; cached "
+                                "afterwards); the general kernel plays meanwhile")
+        v = dynamics_variant(modes, proc.precision)
+        with self._lock:
+            if (self.proc is not proc or int(self.ud[cb.U_SWAP_REQ]) != 0
+                    or int(self.ud[cb.U_KSLOT]) != slot or self._closed):
+                return None  # a swap came between: the next round looks again
+            self._mem.variants.append(v)
+            addr = v.job_variant.address
+            self.table[slot, 0] = addr
+            for i in range(len(self._extra)):
+                self.extra_table[i, 0] = addr
+            self._installed[slot] = (proc, modes)
+        return modes
+
     def snapshot(self):
         """Meters and statistics as plain numbers."""
         s = self.stats
@@ -939,6 +992,7 @@ class Engine:
             "samplerate": self.fs, "blocksize": self.blocksize,
             "muted": bool(self.ud[cb.U_MUTE]), "bypassed": bool(self.ud[cb.U_BYPASS]),
             "monitor": ("out", "key", "delta")[int(self.ud[cb.U_MONITOR])],
+            "kernel": self.kernel_info(),
         }
         if self.stream is not None:
             snap["stream_latency_s"] = {"input": self.stream.input_latency,
@@ -1040,6 +1094,25 @@ def _feeder_loop(engine_ref, stop_evt):
         eng._feed_sources(ended)
         del eng
         stop_evt.wait(0.01)
+
+
+def _variant_loop(engine_ref, stop_evt):
+    """Keep the kernel variant of the running setting installed (Engine.install_variant);
+    holds the Engine only weakly. A variant that cannot be built leaves the general kernel
+    and says so once."""
+    while not stop_evt.is_set():
+        eng = engine_ref()
+        if eng is None:
+            return
+        try:
+            eng.install_variant()
+        except Exception as e:  # noqa: BLE001 - the general kernel plays on
+            why = str(e).splitlines()[0] if str(e) else type(e).__name__
+            eng.notice("warn", f"kernel variant not used: {why}; the general kernel plays")
+            return
+        finally:
+            del eng
+        stop_evt.wait(0.25)
 
 
 def _tap_loop(engine_ref, stop_evt, rec):
