@@ -856,7 +856,8 @@ def cmd_bench(args):
         from .bench.user import format_user, run_user
 
         result["kernels"] = run_user(args.algorithm, quick=args.quick,
-                                     samplerate=int(args.samplerate))
+                                     samplerate=int(args.samplerate),
+                                     precisions=(args.precision,) if args.precision else None)
         print(format_user(result["kernels"]), flush=True)
     elif what in ("kernels", "all"):
         from .bench.kernels import machine_info, report
@@ -1163,6 +1164,9 @@ def build_parser():
                          "stream: the live callback's share of the block period; swap: what a "
                          "live swap costs; latency: round trip through a loopback; all: each")
     bn.add_argument("--quick", action="store_true", help="short runs for a smoke test")
+    bn.add_argument("--precision", choices=("float64", "float32"), default=None,
+                    help="kernels --algorithm FILE: time the file in this precision only "
+                         "(default both)")
     bn.add_argument("--algorithm", default="compressor", metavar="NAME",
                     help="built-in name or FILE.py: kernels then times the file beside the "
                          "built-in compressor with the stages the file leaves out, in each "

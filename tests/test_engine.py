@@ -193,11 +193,11 @@ def test_live_output_equals_offline_render_of_the_recording(jack_server, tmp_pat
             # block of another setting to the general kernel until that setting's variant is
             # in (both made here first, so that the run sees them installed)
             from livedyn.dsp.dynamics import dynamics_modes
-            from livedyn.dsp.variants import dynamics_variant
+            from livedyn.dsp.variants import job_variant
 
             for det in ("peak", "rms"):
                 p = livedyn.Processor(algorithm, FS, 2, detector=det, **settings).p
-                dynamics_variant(int(dynamics_modes(p)), precision)
+                job_variant(int(dynamics_modes(p)), precision)
             changes = sorted(changes + [(1.05, "detector", 1.0), (1.85, "detector", 0.0)])
     else:
         settings, changes, kch = DUCK_SETTINGS, DUCK_CHANGES, 1

@@ -18,7 +18,6 @@ import livedyn
 from livedyn import loader
 from livedyn.dsp import precision as prec
 from livedyn.params import ParamError
-from livedyn.shipped import examples_folder
 
 FS = 48000
 
@@ -151,16 +150,8 @@ def test_a_float32_compile_error_names_the_users_line(tmp_path):
             loader.load(f, precision=precision)
 
 
-@pytest.mark.parametrize("path", sorted(examples_folder().glob("*.py")), ids=lambda p: p.name)
-def test_every_example_file_loads_and_runs_in_float32(path):
-    a32 = loader.load(path, precision="float32")
-    kch = 1 if a32.needs_key else 0
-    x = _noise_bursts(FS // 4)
-    key = _noise_bursts(FS // 4, 1, seed=5) if kch else None
-    y32 = livedyn.Processor(a32, FS, 2, kch).process(x, key)
-    y64 = livedyn.Processor(loader.load(path), FS, 2, kch).process(x, key)
-    assert np.isfinite(y32).all()
-    assert np.abs(y32 - y64).max() < 1e-3
+# Every example file in float32: `livedyn precision-audit --every` loads and runs each one in
+# both precisions and bounds the difference (tests/test_audit.py).
 
 
 def test_render_takes_the_precision_from_the_option_or_a_setting(tmp_path):

@@ -208,11 +208,13 @@ def test_bench_kernels_times_each_example_beside_the_compressor(path, tmp_path):
     out = tmp_path / "b.json"
     # `python -m livedyn` from the repository: this tree's livedyn, whatever the venv installed
     r = subprocess.run([sys.executable, "-m", "livedyn", "bench", "kernels", "--algorithm",
-                        str(path), "--quick", "--json", str(out)], capture_output=True,
+                        str(path), "--quick", "--precision", "float64", "--json", str(out)],
+                       capture_output=True,
                        text=True, timeout=600, cwd=ROOT)
     assert r.returncode == 0, r.stderr
     name = load(path).name
     doc = json.loads(out.read_text())["kernels"]
+    assert doc["precisions"] == ["float64"]  # as asked (tests/test_bench_bare.py: both)
     rows = [r for r in doc["rows"] if r["precision"] == "float64"]
     assert [r["blocksize"] for r in rows] == [64, 64, 1024, 1024]
     assert [s["blocksize"] for s in doc["stage"] if s["precision"] == "float64"] == [64, 1024]

@@ -18,7 +18,7 @@ from .kernels import machine_info, noise_bursts
 
 
 def run_user(path, blocksizes=(64, 1024), channels=2, samplerate=48000, seconds=2.0, rounds=7,
-             baseline="compressor", quick=False):
+             baseline="compressor", quick=False, precisions=None):
     """Rows of {algorithm, precision, blocksize, ns_per_frame, ns_min, ns_max,
     share_of_real_time, over_baseline}, the user file first, then the baseline, per precision
     and block size; and ``stage`` rows of {precision, blocksize, diff_ns, diff_min, diff_max,
@@ -31,7 +31,8 @@ def run_user(path, blocksizes=(64, 1024), channels=2, samplerate=48000, seconds=
     base = get(baseline)
     frames = int(seconds * samplerate)
     rows, stage, sets = [], [], []
-    for prec in PRECISIONS:
+    precisions = tuple(precisions or PRECISIONS)
+    for prec in precisions:
         for bs in blocksizes:
             n = max(bs, frames // bs * bs)
             x = noise_bursts(7, n, channels, samplerate)
@@ -59,7 +60,7 @@ def run_user(path, blocksizes=(64, 1024), channels=2, samplerate=48000, seconds=
         stage.append({"precision": prec, "blocksize": bs,
                       **_diff(runs["user"], runs["base"])})
     return {"rows": rows, "stage": stage, "machine": machine_info(), "rounds": rounds,
-            "seconds": seconds, "baseline": baseline, "precisions": list(PRECISIONS)}
+            "seconds": seconds, "baseline": baseline, "precisions": list(precisions)}
 
 
 def format_user(result):

@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import ast
 import threading
+from pathlib import Path
 
 from .precision import _folder, check, import_text, module_text
 
@@ -75,10 +76,9 @@ class _Constant(ast.NodeTransformer):
 
 
 def dynamics_variant(modes, precision="float64"):
-    """The module of the dynamics kernel compiled for ``modes`` (an integer from
-    ``dynamics_modes``) in ``precision``: ``dynamics_block`` (the kernel, same contract),
-    ``job_variant`` (its job function for the callback) and ``MODES``. Made and imported on
-    first use; importing compiles (or loads from the cache) the job function."""
+    """The module of the dynamics kernel for ``modes`` (an integer from ``dynamics_modes``)
+    in ``precision``: ``dynamics_block`` (the kernel, same contract, compiled or loaded from
+    the cache at its first call) and ``MODES``; :func:`job_variant` adds its job function."""
     precision = check(precision)
     modes = int(modes)
     if not 0 <= modes < 1 << 16:
@@ -95,11 +95,23 @@ def dynamics_variant(modes, precision="float64"):
         folder = _folder("variants")
         name = f"livedyn_v_{folder.name}_{'f32' if precision == 'float32' else 'f64'}_{modes}"
         mod = import_text(folder, name, text, precision == "float32")
-        # the job function apart, compiled once the kernel's module constants are final
-        job = import_text(folder, name + "_job", _JOB.format(kernel=name), False)
-        mod.job_variant = job.job_variant
         _LOADED[key] = mod
         return mod
+
+
+def job_variant(modes, precision="float64"):
+    """The job function (``void fn(void *job)``) of the variant for ``modes``: made on first
+    use, apart from the kernel (offline use needs only the kernel) and once the kernel
+    module's constants are final."""
+    mod = dynamics_variant(modes, precision)
+    with _LOCK:
+        job = getattr(mod, "job_variant", None)
+        if job is None:
+            folder = Path(mod.__file__).parent
+            job = import_text(folder, mod.__name__ + "_job", _JOB.format(kernel=mod.__name__),
+                              False).job_variant
+            mod.job_variant = job
+        return job
 
 
 def loaded(modes, precision="float64"):

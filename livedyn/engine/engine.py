@@ -506,10 +506,11 @@ class Engine:
         self.stream.start()
         self._rt_finder.begin(self.stats[cb.S_BLOCKS])
         me = weakref.ref(self)
+        if self.variants:  # not joined at stop: it never holds the engine while it compiles
+            threading.Thread(target=_variant_loop, args=(me, self._stop_evt), daemon=True,
+                             name="livedyn-variant-loop").start()
         loops = [(_feeder_loop, (me, self._stop_evt)),
                  (_tap_loop, (me, self._stop_evt, self._rec))]
-        if self.variants:
-            loops.append((_variant_loop, (me, self._stop_evt)))
         for target, args in loops:
             t = threading.Thread(target=target, args=args, daemon=True,
                                  name=f"livedyn-{target.__name__.strip('_')}")
@@ -925,11 +926,22 @@ class Engine:
         install. Off the audio thread (a variant's first compilation takes seconds; the
         general kernel runs meanwhile). Changes of setting need no care: a variant's job runs
         the general kernel for any other setting (livedyn.dsp.variants)."""
+        from ..dsp.variants import job_variant
+
+        want = self._variant_wanted()
+        if want is None or isinstance(want, int):
+            return want
+        proc, slot, modes = want
+        return self._install(proc, slot, modes, job_variant(modes, proc.precision))
+
+    def _variant_wanted(self):
+        """(processor, slot, setting) of a variant to install; its setting when the one
+        installed is right already; None when there is nothing to do."""
         from ..dsp.dynamics import dynamics_modes
-        from ..dsp.variants import dynamics_variant, loaded
+        from ..dsp.variants import loaded
 
         proc = self.proc
-        if proc.algorithm.kind != "dynamics" or self.stream is None:
+        if proc.algorithm.kind != "dynamics" or self.stream is None or self._closed:
             return None
         slot = int(self.ud[cb.U_KSLOT])
         modes = int(dynamics_modes(self.pend))  # what the callback runs (a torn read of a
@@ -937,20 +949,23 @@ class Engine:
         inst = self._installed.get(slot)
         if inst is not None and inst[0] is proc and inst[1] == modes:
             return modes
-        if loaded(modes, proc.precision) is None:
+        if getattr(loaded(modes, proc.precision), "job_variant", None) is None:
             self.notice("info", "compiling a kernel for this setting (once; cached "
                                 "afterwards); the general kernel plays meanwhile")
-        v = dynamics_variant(modes, proc.precision)
+        return proc, slot, modes
+
+    def _install(self, proc, slot, modes, job):
         with self._lock:
             if (self.proc is not proc or int(self.ud[cb.U_SWAP_REQ]) != 0
                     or int(self.ud[cb.U_KSLOT]) != slot or self._closed):
                 return None  # a swap came between: the next round looks again
-            self._mem.variants.append(v)
-            addr = v.job_variant.address
+            self._mem.variants.append(job)
+            addr = job.address
             self.table[slot, 0] = addr
             for i in range(len(self._extra)):
                 self.extra_table[i, 0] = addr
             self._installed[slot] = (proc, modes)
+        self.notice("info", "the kernel compiled for this setting is in use")
         return modes
 
     def snapshot(self):
@@ -1097,21 +1112,34 @@ def _feeder_loop(engine_ref, stop_evt):
 
 
 def _variant_loop(engine_ref, stop_evt):
-    """Keep the kernel variant of the running setting installed (Engine.install_variant);
-    holds the Engine only weakly. A variant that cannot be built leaves the general kernel
+    """Keep the kernel variant of the running setting installed (see Engine.install_variant);
+    holds the Engine only weakly, and not at all while a variant compiles, so that stopping
+    never waits for a compilation. A variant that cannot be built leaves the general kernel
     and says so once."""
+    from ..dsp.variants import job_variant
+
     while not stop_evt.is_set():
         eng = engine_ref()
         if eng is None:
             return
-        try:
-            eng.install_variant()
-        except Exception as e:  # noqa: BLE001 - the general kernel plays on
-            why = str(e).splitlines()[0] if str(e) else type(e).__name__
-            eng.notice("warn", f"kernel variant not used: {why}; the general kernel plays")
-            return
-        finally:
-            del eng
+        want = eng._variant_wanted()
+        del eng
+        if want is not None and not isinstance(want, int):
+            proc, slot, modes = want
+            try:
+                job = job_variant(modes, proc.precision)
+            except Exception as e:  # noqa: BLE001 - the general kernel plays on
+                eng = engine_ref()
+                if eng is not None:
+                    why = str(e).splitlines()[0] if str(e) else type(e).__name__
+                    eng.notice("warn", f"kernel variant not used: {why}; the general "
+                                       "kernel plays")
+                return
+            eng = engine_ref()
+            if eng is None or stop_evt.is_set():
+                return
+            eng._install(proc, slot, modes, job)
+            del eng, proc
         stop_evt.wait(0.25)
 
 
