@@ -76,7 +76,8 @@ def main(argv=None):
             from .bare import run_precision
 
             precision = run_precision(quick=args.quick, blocksizes=blocksizes,
-                                      samplerate=args.samplerate, wide=args.wide)
+                                      samplerate=args.samplerate, wide=args.wide,
+                                      seconds=args.seconds)
         else:
             print(f"(no bare-C table: its loops are stereo; --channels {args.channels})")
     except ValueError as exc:

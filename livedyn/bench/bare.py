@@ -654,7 +654,7 @@ def format_curves(rows, note=None):
 
 
 def run_precision(quick=False, blocksizes=(64, 1024), samplerate=48000, wide=False, out=print,
-                  progress=_stderr):
+                  progress=_stderr, seconds=None):
     """Both sections (:func:`run_bare`, then :func:`run_curves`), as ``bench kernels`` runs them.
 
     Returns
@@ -669,8 +669,8 @@ def run_precision(quick=False, blocksizes=(64, 1024), samplerate=48000, wide=Fal
     except CTwinUnavailable:
         lib = None  # each section loads again, gets the remembered failure and prints its note
     bare_rows = run_bare(quick=quick, blocksizes=blocksizes, samplerate=samplerate, out=out,
-                         progress=progress, lib=lib, wide=wide)
+                         progress=progress, lib=lib, wide=wide, seconds=seconds)
     curve_rows = run_curves(quick=quick, blocksizes=blocksizes, samplerate=samplerate, out=out,
-                            progress=progress, lib=lib)
+                            progress=progress, lib=lib, seconds=seconds)
     ok = all(r["check"] != "MISMATCH" for r in bare_rows + curve_rows)
     return dict(bare=bare_rows, curves=curve_rows, ok=ok)
