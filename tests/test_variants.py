@@ -101,3 +101,12 @@ def test_no_variant_where_there_is_no_setting_to_fix():
     assert livedyn.Processor("limiter", FS, 2).specialise() is None
     with pytest.raises(ValueError, match="modes = 70000: expected 0 to 65535"):
         variants.dynamics_variant(70000)
+
+
+def test_ready_tells_a_load_from_a_compilation():
+    # the engine says "compiling" only when the variant's machine code is not in the cache
+    m = int(dynamics_modes(livedyn.Processor("gate", FS, 2).p))
+    variants.job_variant(m)
+    assert variants.ready(m)
+    never = (1 << 15) | (1 << 14) | (3 << 8) | 4  # user stages, link 3: no setting has it
+    assert variants.loaded(never) is None and not variants.ready(never)

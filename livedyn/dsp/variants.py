@@ -93,7 +93,7 @@ def dynamics_variant(modes, precision="float64"):
             raise RuntimeError("internal: the dynamics kernel's modes line was not found")
         text += f"\n\nMODES = {modes}\n"
         folder = _folder("variants")
-        name = f"livedyn_v_{folder.name}_{'f32' if precision == 'float32' else 'f64'}_{modes}"
+        name = _name(folder, modes, precision)
         mod = import_text(folder, name, text, precision == "float32")
         _LOADED[key] = mod
         return mod
@@ -112,6 +112,21 @@ def job_variant(modes, precision="float64"):
                               False).job_variant
             mod.job_variant = job
         return job
+
+
+def _name(folder, modes, precision):
+    return f"livedyn_v_{folder.name}_{'f32' if precision == 'float32' else 'f64'}_{modes}"
+
+
+def ready(modes, precision="float64"):
+    """True when the variant's job function is in this process already, or its machine code
+    is in the cache (so that making it is a load, not a compilation)."""
+    mod = _LOADED.get((int(modes), check(precision)))
+    if mod is not None and getattr(mod, "job_variant", None) is not None:
+        return True
+    folder = _folder("variants")
+    name = _name(folder, int(modes), check(precision))
+    return any((folder / "__pycache__").glob(f"{name}_job.job_variant-*.nbi"))
 
 
 def loaded(modes, precision="float64"):

@@ -938,7 +938,7 @@ class Engine:
         """(processor, slot, setting) of a variant to install; its setting when the one
         installed is right already; None when there is nothing to do."""
         from ..dsp.dynamics import dynamics_modes
-        from ..dsp.variants import loaded
+        from ..dsp.variants import ready
 
         proc = self.proc
         if proc.algorithm.kind != "dynamics" or self.stream is None or self._closed:
@@ -949,7 +949,7 @@ class Engine:
         inst = self._installed.get(slot)
         if inst is not None and inst[0] is proc and inst[1] == modes:
             return modes
-        if getattr(loaded(modes, proc.precision), "job_variant", None) is None:
+        if not ready(modes, proc.precision):
             self.notice("info", "compiling a kernel for this setting (once; cached "
                                 "afterwards); the general kernel plays meanwhile")
         return proc, slot, modes
