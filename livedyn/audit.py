@@ -132,12 +132,16 @@ def compare(make, x, key, signal, samplerate, blocksize=1024, programme=False):
 def audit(setup, samplerate=48000.0, channels=2, inputs=(), key_path=None, blocksize=1024):
     """Audit a :class:`livedyn.render.Setup` (algorithm, preset, settings) over the test
     programme and each WAV file of ``inputs`` (with ``key_path`` as their key when the
-    algorithm takes one). Returns an :class:`Audit`."""
+    algorithm takes one). A precision the setup asks for is left out: both are run. Returns
+    an :class:`Audit`."""
     from dataclasses import replace
+    from pathlib import Path
 
     from .render import build_processor
     from .wavio import read_wav
 
+    setup = replace(setup, precision=None, settings=[
+        s for s in setup.settings if s[0].strip().lower() != "precision"])
     probe = build_processor(replace(setup, precision="float64"), samplerate, channels)
     keyed = "key" in probe.schema and probe.algorithm.needs_key
 
@@ -161,6 +165,8 @@ def audit(setup, samplerate=48000.0, channels=2, inputs=(), key_path=None, block
         rows.append(compare(maker(fs, data.shape[1], 0 if k is None else k.shape[1]), data, k,
                             str(path), fs, blocksize))
     label = setup.preset or setup.algorithm or probe.algorithm.name
+    if str(label).endswith(".py"):
+        label = Path(label).name
     return Audit(str(label), samplerate, rows)
 
 

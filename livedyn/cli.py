@@ -57,7 +57,9 @@ def _guard(args, writes=(), folders=(), take=None):
     g = Outputs()
     for option, attr in (("IN.wav", "input"), ("--key", "key"), ("--automation", "automation"),
                          ("--input-file", "input_file"), ("--key-file", "key_file")):
-        g.read(option, getattr(args, attr, None))
+        value = getattr(args, attr, None)
+        for path in value if isinstance(value, list) else [value]:  # (IN.wav ... of some)
+            g.read(option, path)
     alg = getattr(args, "algorithm", None)
     if alg is not None and str(alg).endswith(".py"):
         g.read("--algorithm", alg)
@@ -320,7 +322,7 @@ def cmd_port_kit(args):
 def cmd_precision_audit(args):
     """Run settings in float64 and float32 and report what differs (livedyn/audit.py)."""
     from . import audit as au
-    from .render import Setup, parse_setting
+    from .render import Setup
 
     plot = args.plot
     if plot is not None:
@@ -330,16 +332,7 @@ def cmd_precision_audit(args):
             raise CliError("--plot: needs matplotlib (pip install matplotlib)")
         if not str(plot).lower().endswith(".png"):
             raise CliError(f"--plot {plot}: expected a .png file name")
-        from .outputs import Outputs
-
-        g = Outputs()
-        for f in args.input or []:
-            g.read("IN.wav", f)
-        g.read("--key", args.key)
-        if args.algorithm and str(args.algorithm).endswith(".py"):
-            g.read("--algorithm", args.algorithm)
-        g.write("--plot", plot)
-        g.check()
+        _guard(args, writes=[("--plot", plot)])
     setups = []
     if args.every:
         if args.algorithm or args.preset or args.set:
@@ -353,16 +346,11 @@ def cmd_precision_audit(args):
         for f in sorted(examples_folder().glob("*.py")):
             setups.append(Setup(algorithm=str(f)))
     else:
-        base = _setup_from(args)
-        setups.append(Setup(algorithm=base.algorithm, preset=base.preset,
-                            settings=[s for s in base.settings
-                                      if s[0].strip().lower() != "precision"]))
+        setups.append(_setup_from(args))
     over, audits = [], []
     for setup in setups:
         a = au.audit(setup, samplerate=args.samplerate, channels=args.channels,
                      inputs=args.input or (), key_path=args.key)
-        if setup.algorithm and setup.algorithm.endswith(".py"):
-            a.label = Path(setup.algorithm).name
         audits.append(a)
         print(au.format_audit(a), flush=True)
         if not a.within:
@@ -868,7 +856,7 @@ def cmd_bench(args):
         rows = run_sweep(quick=args.quick, wide=args.wide)
         precision = run_precision(quick=args.quick, wide=args.wide)
         result["kernels"] = report(rows, machine_info(), precision=precision)
-        status = status if precision["ok"] else 1
+        status = 0 if precision["ok"] else 1
     if what in ("stream", "all"):
         seconds = args.seconds or (5.0 if args.quick else 60.0)
         kw = dict(seconds=seconds, algorithm=args.algorithm, samplerate=int(args.samplerate),

@@ -79,9 +79,8 @@ class _ToFloat32(ast.NodeTransformer):
     """The rewrite described in the module docstring (functions only; module level is
     converted after import)."""
 
-    def __init__(self, arrays=None):
+    def __init__(self):
         self.depth = 0
-        self.arrays = arrays  # names of arrays whose element reads become float32 (None: all)
 
     @staticmethod
     def _f32(node):
@@ -128,9 +127,7 @@ class _ToFloat32(ast.NodeTransformer):
         base = node.value
         if not isinstance(base, ast.Name):
             return node
-        if self.arrays is not None and base.id not in self.arrays:
-            return node
-        if self.arrays is None and base.id in ("x", "key", "out"):
+        if base.id in ("x", "key", "out"):
             return node  # float32 already
         if isinstance(node.slice, ast.Slice) or (
                 isinstance(node.slice, ast.Tuple)
@@ -156,7 +153,7 @@ class _ToFloat32(ast.NodeTransformer):
         return node
 
 
-def rewrite(source, modules=None, arrays=None, single=True, transform=None):
+def rewrite(source, modules=None, single=True, transform=None):
     """``source`` (a module's text) rewritten for float32 (``single``; otherwise only its
     imports); ``modules`` maps a relative import (``".stages"``) to the absolute module name to
     import instead; ``transform`` (an ast.NodeTransformer) runs first."""
@@ -164,7 +161,7 @@ def rewrite(source, modules=None, arrays=None, single=True, transform=None):
     if transform is not None:
         tree = transform.visit(tree)
     if single:
-        tree = _ToFloat32(arrays).visit(tree)
+        tree = _ToFloat32().visit(tree)
     for node in ast.walk(tree):
         if isinstance(node, ast.ImportFrom) and node.level:
             rel = "." * node.level + (node.module or "")

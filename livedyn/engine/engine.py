@@ -781,7 +781,6 @@ class Engine:
             t0 = time.monotonic()
             old = self.proc
             new = Processor(alg, self.fs, self.ch, self.kch, precision=precision)
-            _job_function(new)  # compiled (or loaded) now, not while the callback waits
             carried = []
             for prm in new.schema:
                 if prm.name in old.schema:
@@ -908,7 +907,6 @@ class Engine:
         self.ud[cb.U_CANARY_NS] = int(spin_ns)
         self.ud[cb.U_CANARY_EVERY] = int(every_blocks)
 
-    # ---- what the callback reports ------------------------------------------------------------
     # ---- kernel variants -----------------------------------------------------------------------
     def kernel_info(self):
         """Which kernel the running slot calls: ``{"precision", "variant"}``, ``variant`` the
@@ -929,14 +927,14 @@ class Engine:
         from ..dsp.variants import job_variant
 
         want = self._variant_wanted()
-        if want is None or isinstance(want, int):
-            return want
+        if want is None:
+            return self.kernel_info()["variant"]
         proc, slot, modes = want
         return self._install(proc, slot, modes, job_variant(modes, proc.precision))
 
     def _variant_wanted(self):
-        """(processor, slot, setting) of a variant to install; its setting when the one
-        installed is right already; None when there is nothing to do."""
+        """(processor, slot, setting) of a variant to install, or None when there is none to
+        install (no variants for this kind, or the right one is in)."""
         from ..dsp.dynamics import dynamics_modes
         from ..dsp.variants import ready
 
@@ -948,7 +946,7 @@ class Engine:
         #                                         change being written only picks another one)
         inst = self._installed.get(slot)
         if inst is not None and inst[0] is proc and inst[1] == modes:
-            return modes
+            return None
         if not ready(modes, proc.precision):
             self.notice("info", "compiling a kernel for this setting (once; cached "
                                 "afterwards); the general kernel plays meanwhile")
@@ -968,6 +966,7 @@ class Engine:
         self.notice("info", "the kernel compiled for this setting is in use")
         return modes
 
+    # ---- what the callback reports ------------------------------------------------------------
     def snapshot(self):
         """Meters and statistics as plain numbers."""
         s = self.stats
@@ -1124,7 +1123,7 @@ def _variant_loop(engine_ref, stop_evt):
             return
         want = eng._variant_wanted()
         del eng
-        if want is not None and not isinstance(want, int):
+        if want is not None:
             proc, slot, modes = want
             try:
                 job = job_variant(modes, proc.precision)
